@@ -1,0 +1,57 @@
+"""Size and cost of a model: stored parameters, multiply-accumulates per inference, bytes on disk."""
+
+from __future__ import annotations
+
+import io
+
+import torch
+from torch import nn
+from torch.nn.utils import parametrize
+from torch.utils.flop_counter import FlopCounterMode
+
+
+def count_params(module: nn.Module) -> int:
+    """Number of parameter values the module stores.
+
+    For a weight tied with ``torch.nn.utils.parametrize`` this counts the stored
+    ``parametrizations.<name>.original`` tensors (the free parameters), not the larger weight
+    they expand to: a parametrized module registers only the originals (and any parameters
+    of the parametrizations themselves) as parameters. Shared parameters count once.
+    """
+    return sum(parameter.numel() for parameter in module.parameters())
+
+
+def count_macs(module: nn.Module, example_input: torch.Tensor | tuple[torch.Tensor, ...]) -> int:
+    """Multiply-accumulates of one inference on ``example_input``, counted by ``FlopCounterMode``.
+
+    Runs ``module(example_input)`` (or ``module(*example_input)`` for a tuple) in eval mode
+    under ``torch.no_grad()`` and returns FLOPs / 2. Tied weights are expanded once beforehand
+    (``parametrize.cached()``), so the count is that of inference with the expanded weights,
+    as after baking. The module's training mode is restored afterwards.
+    """
+    inputs = example_input if isinstance(example_input, tuple) else (example_input,)
+    was_training = module.training
+    module.eval()
+    try:
+        with torch.no_grad(), parametrize.cached():
+            _expand_parametrized_tensors(module)
+            with FlopCounterMode(display=False) as counter:
+                module(*inputs)
+    finally:
+        module.train(was_training)
+    return counter.get_total_flops() // 2
+
+
+def _expand_parametrized_tensors(module: nn.Module) -> None:
+    """Compute every parametrized tensor once, filling the ``parametrize.cached()`` cache."""
+    for submodule in module.modules():
+        if parametrize.is_parametrized(submodule):
+            for name in submodule.parametrizations:
+                getattr(submodule, name)
+
+
+def state_dict_bytes(module: nn.Module) -> int:
+    """Size in bytes of ``torch.save(module.state_dict())``, measured in memory."""
+    buffer = io.BytesIO()
+    torch.save(module.state_dict(), buffer)
+    return buffer.getbuffer().nbytes
