@@ -1,0 +1,68 @@
+"""The typer application, the shared options and the error handling of every command."""
+
+from __future__ import annotations
+
+import sys
+import traceback
+from pathlib import Path
+from typing import Optional
+
+import typer
+from rich.console import Console
+
+from ..errors import OrbifyError
+
+app = typer.Typer(
+    name="orbify",
+    help="Turn a trained plain CNN into a rotation-tied (group-equivariant) one, prove it, tune it, export it.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+    rich_markup_mode="rich",
+)
+console = Console()
+errors = Console(stderr=True)
+_state = {"debug": False}
+
+
+@app.callback()
+def _root(debug: bool = typer.Option(False, "--debug", help="Show the full traceback when a command fails.")) -> None:
+    _state["debug"] = debug
+
+
+# Options shared by every command that reads a model ---------------------------------------
+SOURCE_HELP = ("The model: torchvision:NAME (random weights unless --weights), package.module:factory, "
+               "'example' (the bundled model), a converted-model file, or a pickled model (needs --trust-pickle).")
+WeightsOption = typer.Option(None, "--weights", help="A state-dict file to load into the model "
+                             "(read with weights_only=True; never downloaded).", exists=False)
+TrustOption = typer.Option(False, "--trust-pickle", help="Allow loading a whole model pickled with torch.save(model). "
+                           "Unpickling runs arbitrary code stored in the file: use it only for files you made yourself "
+                           "or fully trust.")
+ForceOption = typer.Option(False, "--force", help="Overwrite the output if it exists.")
+
+
+def fail(error: OrbifyError) -> None:
+    """Print an orbify error as one paragraph and exit with its code."""
+    errors.print(f"[bold red]error:[/] {error}", highlight=False, soft_wrap=True)
+    raise SystemExit(error.exit_code)
+
+
+def main(argv: Optional[list[str]] = None) -> None:
+    """Console-script entry point."""
+    try:
+        app(args=argv, standalone_mode=True)
+    except OrbifyError as error:
+        if _state["debug"]:
+            traceback.print_exc()
+        fail(error)
+    except KeyboardInterrupt:
+        errors.print("interrupted")
+        raise SystemExit(130)
+    except SystemExit:
+        raise
+    except Exception as error:  # an orbify bug or an unexpected library error: say so plainly
+        if _state["debug"]:
+            traceback.print_exc()
+        errors.print(f"[bold red]unexpected error:[/] {type(error).__name__}: {error}. "
+                     "Run again with --debug for the traceback and report it.", highlight=False, soft_wrap=True)
+        raise SystemExit(1)

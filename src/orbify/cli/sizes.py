@@ -1,0 +1,39 @@
+"""``orbify sizes``: input sizes at which every strided op of a model is exact."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Optional
+
+import typer
+from rich.table import Table
+
+from ..sizes import SizeChecker
+from .app import SOURCE_HELP, TrustOption, WeightsOption, app, console
+from .models import read_model
+
+
+@app.command()
+def sizes(
+    source: str = typer.Argument(..., help=SOURCE_HELP),
+    near: int = typer.Option(224, "--near", help="Look for safe sizes near this one."),
+    count: int = typer.Option(5, "--count", help="How many safe sizes to list."),
+    channels: int = typer.Option(3, "--channels", help="Input channels of the model."),
+    weights: Optional[Path] = WeightsOption,
+    trust_pickle: bool = TrustOption,
+) -> None:
+    """List safe input sizes near --near, and say which strided layers break at --near itself.
+
+    Example: orbify sizes torchvision:resnet18 --near 224
+    """
+    model = read_model(source, weights, trust_pickle).module
+    checker = SizeChecker(model, channels)
+    broken = checker.violations(near)
+    if broken:
+        console.print(f"[yellow]{near} is not safe[/]: the first strided op that breaks is {broken[0]}")
+    else:
+        console.print(f"[green]{near} is safe[/]: every strided op samples a symmetric grid")
+    table = Table("safe size", "distance")
+    for size in checker.safe_sizes(near, count):
+        table.add_row(str(size), f"{size - near:+d}")
+    console.print(table)

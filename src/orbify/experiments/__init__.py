@@ -1,0 +1,1 @@
+"""Reproducible experiments on data that packages ship (no downloads)."""
