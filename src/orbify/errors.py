@@ -79,3 +79,7 @@ class RecipeError(OrbifyError):
 
 class DataError(OrbifyError):
     """An image folder or array file that cannot be read as images (and labels)."""
+
+
+class ExportError(OrbifyError):
+    """A model that an exporter (torch.export, TorchScript, ONNX) cannot write, or a missing exporter package."""
