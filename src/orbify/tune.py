@@ -180,6 +180,16 @@ def tune(student: nn.Module, teacher_model: nn.Module, group: str | Group, image
         world.leave()
 
 
+def holdout_split(count: int, fraction: float, seed: int) -> tuple[torch.Tensor, torch.Tensor]:
+    """The sorted indices (train, held out) of ``count`` samples; ``round(count·fraction)`` (≥ 1) are held out at random."""
+    order = torch.randperm(count, generator=torch.Generator().manual_seed(seed))
+    held = max(1, round(count * fraction))
+    if count - held < 2:
+        raise DataError(f"{count} images are too few to hold {held} out and train on the rest",
+                        where="images", fix="give more images or a smaller holdout fraction")
+    return order[held:].sort().values, order[:held].sort().values
+
+
 def _check_data(images: torch.Tensor, labels: torch.Tensor | None) -> None:
     if not isinstance(images, torch.Tensor) or images.dim() != 4 or not images.is_floating_point():
         got = f"shape {tuple(images.shape)} {images.dtype}" if isinstance(images, torch.Tensor) else type(images).__name__
@@ -207,12 +217,7 @@ class _Run:
         self.world = world
         self.checkpoint = checkpoint
         self.on_epoch_end = on_epoch_end
-        order = torch.randperm(len(images), generator=torch.Generator().manual_seed(options.seed))
-        held = max(1, round(len(images) * options.holdout_fraction))
-        if len(images) - held < 2:
-            raise DataError(f"{len(images)} images are too few to hold {held} out and train on the rest",
-                            where="images", fix="give more images or a smaller holdout fraction")
-        self.held_out, self.train = order[:held].sort().values, order[held:].sort().values
+        self.train, self.held_out = holdout_split(len(images), options.holdout_fraction, options.seed)
 
     def execute(self, *, resume: bool, force: bool, recalibrate: bool, progress: bool) -> TuneResult:
         options, world = self.options, self.world
