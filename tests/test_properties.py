@@ -1,0 +1,146 @@
+"""Property tests: random plain CNNs either convert and are invariant, or are refused naming a node.
+
+Models are drawn from the building blocks of design.md section 5: convs with random kernel, stride,
+padding, groups and dilation; batch norm; activations; max/avg pools; residual adds; channel
+concatenations; squeeze-excitation gates; global pool or flatten + linear heads. Groups and budgets
+are drawn too. The CI profile ("ci", the default) runs 200 examples; set
+``HYPOTHESIS_PROFILE=long`` for 2,000.
+"""
+
+import os
+
+import pytest
+import torch
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from torch import nn
+
+from orbify.convert import convert
+from orbify.errors import OrbifyError, UnsupportedOpError, WidthError
+from orbify.groups import parse_group
+from orbify.recalibrate import recalibrate_batch_norm
+from orbify.sizes import SizeChecker
+
+settings.register_profile("quick", max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+settings.register_profile("ci", max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow],
+                          derandomize=True)
+settings.register_profile("long", max_examples=2000, deadline=None, suppress_health_check=[HealthCheck.too_slow])
+settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "ci"))
+
+ACTIVATIONS = [nn.ReLU, nn.SiLU, nn.Hardswish, nn.GELU, nn.Identity]
+
+
+class Block(nn.Module):
+    """One drawn block: conv (+bn) (+act), optionally wrapped as residual / concat / SE."""
+
+    def __init__(self, conv: nn.Conv2d, norm: bool, act: type, wrap: str):
+        super().__init__()
+        self.conv = conv
+        self.norm = nn.BatchNorm2d(conv.out_channels) if norm else nn.Identity()
+        self.act = act()
+        self.wrap = wrap
+        if wrap == "se":
+            squeeze = max(1, conv.out_channels // 4)
+            self.fc1 = nn.Conv2d(conv.out_channels, squeeze, 1)
+            self.fc2 = nn.Conv2d(squeeze, conv.out_channels, 1)
+
+    def forward(self, x):
+        y = self.act(self.norm(self.conv(x)))
+        if self.wrap == "residual":
+            return x + y
+        if self.wrap == "concat":
+            return torch.cat([x, y], 1)
+        if self.wrap == "se":
+            gate = torch.sigmoid(self.fc2(torch.relu(self.fc1(y.mean((2, 3), keepdim=True)))))
+            return y * gate
+        return y
+
+
+class Net(nn.Module):
+    def __init__(self, blocks, pool, head, channels, spatial, classes=5):
+        super().__init__()
+        self.blocks = nn.Sequential(*blocks)
+        self.pool = pool
+        self.head_kind = head
+        features = channels * (spatial * spatial if head == "flatten" else 1)
+        self.fc = nn.Linear(features, classes)
+
+    def forward(self, x):
+        x = self.pool(self.blocks(x))
+        if self.head_kind == "global":
+            x = nn.functional.adaptive_avg_pool2d(x, 1)
+        return self.fc(torch.flatten(x, 1))
+
+
+@st.composite
+def networks(draw):
+    width_unit = draw(st.sampled_from([2, 4, 8]))
+    channels = 3
+    blocks = []
+    for _ in range(draw(st.integers(1, 3))):
+        wrap = draw(st.sampled_from(["plain", "residual", "concat", "se"]))
+        kernel = draw(st.sampled_from([1, 3, 5]))
+        dilation = draw(st.sampled_from([1, 2])) if kernel > 1 else 1
+        stride = 1 if wrap in ("residual", "concat") else draw(st.sampled_from([1, 2]))
+        out = channels if wrap == "residual" else width_unit * draw(st.integers(1, 4))
+        groups = 1
+        if channels > 3 and draw(st.booleans()):
+            groups = draw(st.sampled_from([d for d in (2, 4, channels) if channels % d == 0 and out % d == 0] or [1]))
+            if wrap == "residual" or groups == channels:
+                out = channels
+        padding = dilation * (kernel - 1) // 2 if wrap in ("residual", "concat") else draw(st.integers(0, 2))
+        conv = nn.Conv2d(channels, out, kernel, stride=stride, padding=padding, dilation=dilation, groups=groups,
+                         bias=draw(st.booleans()))
+        blocks.append(Block(conv, draw(st.booleans()), draw(st.sampled_from(ACTIVATIONS)), wrap))
+        channels = channels + out if wrap == "concat" else out
+    pool = draw(st.sampled_from([nn.Identity(), nn.MaxPool2d(2), nn.AvgPool2d(3, stride=2, padding=1)]))
+    head = draw(st.sampled_from(["global", "flatten"]))
+    return blocks, pool, head, channels
+
+
+def _first_safe_size(model, low=13, high=40):
+    checker = SizeChecker(model)
+    for size in range(low, high):
+        if checker.is_safe(size):
+            with torch.no_grad():
+                try:
+                    model(torch.zeros(1, 3, size, size))
+                except RuntimeError:
+                    continue
+            return size
+    return None
+
+
+def _spatial_out(probe, size):
+    with torch.no_grad():
+        return probe(torch.zeros(1, 3, size, size)).shape[-1]
+
+
+@given(networks(), st.sampled_from(["c2", "c4", "d1", "d2", "d4"]), st.sampled_from(["channels", "params", "fields"]),
+       st.integers(0, 2**16))
+def test_random_networks_convert_invariantly_or_are_refused(drawn, group_name, budget, seed):
+    blocks, pool, head, channels = drawn
+    probe = nn.Sequential(*blocks, pool).eval()
+    size = _first_safe_size(probe)
+    if size is None:
+        return   # no input size in range runs this network; nothing to convert
+    spatial = _spatial_out(probe, size)
+    torch.manual_seed(seed)
+    model = Net(blocks, pool, head, channels, spatial).eval()
+    x = torch.randn(2, 3, size, size)
+    try:
+        converted, plan = convert(model, group_name, budget=budget, example_input=x)
+    except (UnsupportedOpError, WidthError) as error:
+        assert "graph node '" in str(error), str(error)
+        return
+    except OrbifyError as error:   # any other refusal must still be one explained paragraph
+        assert error.fix, str(error)
+        return
+    recalibrate_batch_norm(converted, [torch.randn(4, 3, size, size)])
+    converted, x = converted.double().eval(), x.double()   # float64: structural error, not float32 rounding
+    group = parse_group(group_name)
+    with torch.no_grad():
+        y = converted(x)
+        scale = y.norm().clamp_min(1e-12)
+        for g in range(group.order):
+            assert float((converted(group.act_grid(g, x)) - y).norm() / scale) <= 1e-5, (group_name, budget, g)
