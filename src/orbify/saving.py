@@ -26,7 +26,6 @@ converted-model files.
 from __future__ import annotations
 
 import importlib
-import inspect
 import json
 import zipfile
 from collections.abc import Mapping
@@ -210,12 +209,11 @@ def _rebuild(source: Path, metadata: dict) -> fx.GraphModule:
     dtype = getattr(torch, options.get("dtype", "float32"), None)
     if not isinstance(dtype, torch.dtype) or not dtype.is_floating_point:
         raise _not_ours(source, f"its dtype {options.get('dtype')!r} is not a floating-point torch dtype")
-    keywords = dict(init=options["init"], stop_at=options.get("stop_at"), leaf_types=leaf_types)
-    if "carry_weights" in inspect.signature(convert).parameters:
-        keywords["carry_weights"] = False
     try:
         example = torch.zeros(tuple(options["input_shape"]))
-        module, _ = convert(plain, options["group"], options["budget"], options["head"], example, **keywords)
+        module, _ = convert(plain, options["group"], options["budget"], options["head"], example,
+                            init=options["init"], stop_at=options.get("stop_at"), leaf_types=leaf_types,
+                            carry_weights=False)
     except OrbifyError as error:
         raise CheckpointError(
             f"Converting {reference!r} again with the options recorded in {str(source)!r} failed: {error}",
