@@ -1,0 +1,131 @@
+"""Inference cost of a converted model beside the original and the original averaged over the group.
+
+For each model and batch size, in eval mode without gradients on the CPU, one interleaved run times:
+
+* the original plain model;
+* the converted model (``channels`` budget) under each group, with the tying cached
+  (``torch.nn.utils.parametrize.cached()``, entered once around the whole run) and baked
+  (:func:`orbify.bake_model`, plain modules);
+* the original with test-time averaging over each group (:class:`orbify.teacher.GroupAveraged`, all
+  |G| views of the batch in one forward pass, the fastest way to average);
+* expanding every tied weight of the converted model once: what each forward would pay on top
+  if the tying were not cached.
+
+Targets: converted / original ≤ 1.05; averaging / converted ≥ 0.9·|G|.
+
+Run: ``python benchmarks/inference.py`` (full, several minutes) or ``--quick`` (smoke run, under a minute).
+"""
+
+from __future__ import annotations
+
+import harness  # first: it sets the OpenMP wait policy before torch loads
+
+from collections.abc import Callable  # noqa: E402
+
+import torch  # noqa: E402
+import typer  # noqa: E402
+from torch import nn  # noqa: E402
+from torch.nn.utils import parametrize  # noqa: E402
+from orbify import bake_model, convert, parse_group  # noqa: E402
+from orbify.sizes import SizeChecker  # noqa: E402
+from orbify.teacher import GroupAveraged  # noqa: E402
+
+CONVERTED_MAX = 1.05        # converted / original
+AVERAGING_MIN_SHARE = 0.9   # averaging / converted ≥ this · |G|
+
+
+def expand_all(model: nn.Module) -> Callable[[], None]:
+    """A call that expands every tied tensor of ``model`` from its base once (bypassing any cache)."""
+    pairs = harness.tied_tensors(model)
+
+    def expand() -> None:
+        for parametrization, base in pairs:
+            parametrization(base)
+
+    return expand
+
+
+def variants_for(plain: nn.Module, size: int, groups: list[str]) -> dict[str, nn.Module]:
+    """Named models to time: the original, each converted model (cached and baked) and each averaged original."""
+    example = torch.randn(1, 3, size, size)
+    models: dict[str, nn.Module] = {"original": plain}
+    for group in groups:
+        # matching chooses which channels share an orbit; it does not change the structure timed here
+        converted, _ = convert(plain, group, "channels", "invariant", example, match=False)
+        models[f"{group} converted, tying cached"] = converted.eval()
+        models[f"{group} converted, baked"] = bake_model(converted).eval()
+        models[f"original averaged over {group}"] = GroupAveraged(plain, group, views="logit").eval()
+    return models
+
+
+def main(
+    quick: bool = typer.Option(False, "--quick", help="Smoke run: resnet18 only, 65 px, batches 1 and 4, 3 rounds."),
+    rounds: int = typer.Option(0, "--rounds", help="Timed rounds (0: 7, or 3 with --quick)."),
+) -> None:
+    """Time inference of original, converted (cached and baked) and group-averaged models; print the tables."""
+    harness.fix_threads()
+    names = ["resnet18"] if quick else ["resnet18", "mobilenet_v2"]
+    size = 65 if quick else 225
+    batches = [1, 4] if quick else [1, 16]
+    groups = ["c4", "d4"]
+    rounds = rounds or (3 if quick else 7)
+    harness.print_header("Inference (eval mode, no gradients, CPU)", {
+        "models": ", ".join(f"torchvision {n} (weights=None, batch-norm statistics from random images)" for n in names),
+        "input size": f"{size}×{size}", "batches": ", ".join(map(str, batches)), "groups": ", ".join(groups),
+        "budget": "channels", "rounds": f"{rounds} timed, 1 warm-up (variants interleaved per round)",
+        "times": "median (lower quartile–upper quartile), ms per batch",
+        "ratios": "median (quartiles) of per-round ratios",
+    })
+    times = harness.markdown_table("model", "batch", "variant", "wall ms", "CPU ms")
+    ratio_tables = {clock: harness.markdown_table(
+        "model", "batch", "group", f"converted cached ÷ original (≤ {CONVERTED_MAX})",
+        f"converted baked ÷ original (≤ {CONVERTED_MAX})", "averaged ÷ converted cached (≥ 0.9·|G|)",
+        "averaged ÷ converted baked (≥ 0.9·|G|)") for clock in ("wall", "cpu")}
+    for name in names:
+        plain = harness.build_plain(name, size)
+        if not SizeChecker(plain).is_safe(size):
+            raise SystemExit(f"{size} is not a safe size for {name}; pick one from `orbify sizes torchvision:{name}`")
+        models = variants_for(plain, size, groups)
+        expansions = {f"{g} expanding all tied weights once (cost per forward if not cached)":
+                      expand_all(models[f"{g} converted, tying cached"]) for g in groups}
+        for batch in batches:
+            x = torch.randn(batch, 3, size, size)
+            calls = {label: (lambda m=model: m(x)) for label, model in models.items()}
+            with torch.no_grad(), parametrize.cached():
+                samples = harness.interleaved({**calls, **expansions}, rounds)
+            for label, s in samples.items():
+                times.add_row(name, str(batch), label, harness.Spread.of(s.wall).format(1e3, 1),
+                              harness.Spread.of(s.cpu).format(1e3, 1))
+            for clock, table in ratio_tables.items():
+                for row in ratio_rows(name, batch, groups, samples, clock):
+                    table.add_row(*row)
+    harness.console.print("\n### Times\n")
+    harness.console.print(times)
+    for clock, title in (("wall", "wall-clock time"), ("cpu", "process CPU time (steadier on a shared machine)")):
+        harness.console.print(f"\n### Ratios of {title}\n")
+        harness.console.print(ratio_tables[clock])
+
+
+def ratio_rows(name: str, batch: int, groups: list[str], samples: dict[str, harness.Samples],
+               clock: str) -> list[tuple[str, ...]]:
+    """One row per group: the four target ratios on ``clock`` ("wall" or "cpu") with their verdicts."""
+    rows = []
+    for group in groups:
+        order = parse_group(group).order
+        original = getattr(samples["original"], clock)
+        cached = getattr(samples[f"{group} converted, tying cached"], clock)
+        baked = getattr(samples[f"{group} converted, baked"], clock)
+        averaged = getattr(samples[f"original averaged over {group}"], clock)
+        cells = []
+        for numerator, denominator, target, at_most in ((cached, original, CONVERTED_MAX, True),
+                                                        (baked, original, CONVERTED_MAX, True),
+                                                        (averaged, cached, AVERAGING_MIN_SHARE * order, False),
+                                                        (averaged, baked, AVERAGING_MIN_SHARE * order, False)):
+            ratio = harness.ratios(numerator, denominator)
+            cells.append(f"{ratio.format()} {harness.verdict(ratio.median, target, at_most)}")
+        rows.append((name, str(batch), f"{group} (0.9·|G| = {AVERAGING_MIN_SHARE * order:.1f})", *cells))
+    return rows
+
+
+if __name__ == "__main__":
+    typer.run(main)
