@@ -112,6 +112,13 @@ def fixed_batches(count: int, batch_size: int) -> list[torch.Tensor]:
     return batches
 
 
+def process_rank() -> int:
+    """This process's rank: from the running process group, else from ``torchrun``'s ``RANK``, else 0."""
+    if dist.is_available() and dist.is_initialized():
+        return dist.get_rank()
+    return int(os.environ.get("RANK", "0"))
+
+
 def launched_by_torchrun() -> bool:
     """True when the launch variables of ``torchrun`` (``RANK`` and ``WORLD_SIZE``) are set."""
     return "RANK" in os.environ and "WORLD_SIZE" in os.environ

@@ -105,7 +105,8 @@ class TuneResult:
     ``before`` evaluates the student after batch-norm recalibration, before the first step.
     ``teacher_accuracy`` is the held-out accuracy of the teacher under every view combination
     (empty without labels), to judge the choice. ``teacher_hash`` fingerprints the cached teacher
-    outputs and the split; checkpoints carry it. ``resumed_after`` is the epoch a resumed run
+    outputs and the split; checkpoints carry it. ``rank`` is this process's rank (rank 0 writes
+    files). ``resumed_after`` is the epoch a resumed run
     started after (None for a fresh run).
     """
 
@@ -117,6 +118,7 @@ class TuneResult:
     processes: int
     train_images: int
     held_out_images: int
+    rank: int = 0
     resumed_after: int | None = None
     notes: list[str] = field(default_factory=list)
 
@@ -227,7 +229,7 @@ class _Run:
         self.teacher = teacher.log_probabilities
         self.targets = self.labels if self.labels is not None else teacher.top_class[options.view_combination]
         result = TuneResult(options, None, [], self._teacher_accuracy(teacher), self._hash(), world.size,
-                            len(self.train), len(self.held_out))
+                            len(self.train), len(self.held_out), world.rank)
         state = self._start(result, resume=resume, force=force)
         torch.manual_seed(options.seed + world.rank)
         if state is None and recalibrate:

@@ -20,7 +20,7 @@ class Display:
         self.steps = steps
         self.progress = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
                                  TimeElapsedColumn(), TimeRemainingColumn(), TextColumn("{task.fields[status]}"),
-                                 console=console, disable=not enabled)
+                                 console=console, disable=not enabled, transient=True)
 
     def __enter__(self) -> "Display":
         self.progress.__enter__()
