@@ -1,0 +1,258 @@
+"""The least-squares refit of one tied conv or linear layer, accumulated batch by batch.
+
+A tied layer's full weight is a linear function of its base (:mod:`orbify.tying`). Calibration
+fits base rows so that chosen output rows reproduce targets taken from the original:
+
+* **orbit outputs**: the base row of orbit o *is* the slot-0 filter (design.md section 4), and
+  slot s holds the same filter moved by s, ``W[o, s] = base[o][index_s]``. Row (o, s) on the
+  input x computes what slot 0 computes on the input moved by s⁻¹, so fitting slot 0 on the
+  images *and their transformed copies* is fitting every slot s on the images as given, with
+  the features permuted back (``u[:, argsort(index_s)]``) and the target the original's output
+  on the copy s⁻¹·x, its pixels moved back by s. Only the converted model's input on the
+  images is needed: its Gram matrix is symmetrised over the slots instead of recomputed.
+* **plain outputs** (heads, layers after an orbit pool): every output row is fitted; its weight is
+  ``J @ base_row`` with the same J for every row, and its output does not change with the
+  copy, so all copies share the features ``u J`` and the target is the original averaged over
+  the copies (with pixels moved back): the original averaged over the group.
+
+Per batch only Gram matrices (features × features per conv group), feature sums and
+feature-target products are kept; the unfolded input of one batch is the largest temporary.
+The solve is ridge least squares in float64, with an intercept when the layer has a bias or
+feeds a batch norm that can absorb it.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import torch
+import torch.nn.functional as F
+from torch import nn
+from torch.nn.utils import parametrize
+
+from ..groups import Group
+
+#: Largest number of features per output row that is refitted (its Gram matrix: 8192² float64 = 0.5 GB).
+MAX_FEATURES = 8192
+
+
+class NotRefittable(Exception):
+    """Raised by :class:`LayerEquations` for a layer it cannot refit; the message says why."""
+
+
+@dataclass
+class Solution:
+    """Fitted base rows, intercepts, and the statistics of the fit (per fitted row).
+
+    ``fitted_mean``/``fitted_square`` are the mean and mean square of the fitted output,
+    ``target_mean``/``target_square`` those of the target, over every position and copy.
+    """
+
+    base: torch.Tensor                  # (rows, base features)
+    intercept: torch.Tensor | None      # (rows,)
+    error: float                        # unexplained share of the targets' variance
+    fitted_mean: torch.Tensor
+    fitted_square: torch.Tensor
+    target_mean: torch.Tensor
+    target_square: torch.Tensor
+
+
+class LayerEquations:
+    """Normal equations of one layer's refit.
+
+    Args:
+        module: the tied ``nn.Conv2d`` or ``nn.Linear`` of the converted model.
+        group: the conversion's group.
+        targets: for every fitted row (orbit o for orbit outputs, output channel for plain
+            outputs), the original output channel it must reproduce.
+        slots: the slots fitted on the images as given (their copies' targets come from the
+            original on s⁻¹·x); ``[0]`` fits the images only.
+        intercept: fit a constant per row as well.
+    """
+
+    def __init__(self, module: nn.Module, group: Group, targets: torch.Tensor, slots: list[int], intercept: bool):
+        if isinstance(module, nn.ConvTranspose2d):
+            raise NotRefittable("transposed convs are not refitted")
+        self.module = module
+        self.group = group
+        self.intercept = intercept
+        self.targets = targets.long()
+        self.is_conv = isinstance(module, nn.Conv2d)
+        self.groups = module.groups if self.is_conv else 1
+        out_channels = module.out_channels if self.is_conv else module.out_features
+        in_channels = module.in_channels if self.is_conv else module.in_features
+        kernel = tuple(module.kernel_size) if self.is_conv else ()
+        self.features = in_channels // self.groups * _prod(kernel)
+        if self.features + 1 > MAX_FEATURES:
+            raise NotRefittable(f"{self.features} features per output exceed the limit of {MAX_FEATURES}")
+        self.out_per_group = out_channels // self.groups
+        self.tying = module.parametrizations.weight[0] if parametrize.is_parametrized(module, "weight") else None
+        self.orbit_out = self.tying is not None and self.tying.out_is_orbit
+        self.order = group.order
+        self.slots, self.actions = self._actions(slots)
+        rows = self.targets.numel()
+        self.row_groups = torch.stack([self._row_group(torch.arange(rows), s) for s in self.slots])  # (slots, rows)
+        shape = (self.groups, self.features)
+        self.gram = torch.zeros(*shape, self.features, dtype=torch.float64)
+        self.sums = torch.zeros(shape, dtype=torch.float64)
+        self.count = 0
+        self.cross = torch.zeros(len(self.slots), rows, self.features, dtype=torch.float64)
+        self.target_sums = torch.zeros(len(self.slots), rows, dtype=torch.float64)
+        self.target_squares = torch.zeros(len(self.slots), rows, dtype=torch.float64)
+
+    # -- what the tying does to a row ----------------------------------------------------------
+    def _actions(self, slots: list[int]) -> tuple[list[int], list[torch.Tensor] | torch.Tensor | None]:
+        """Slots kept and, per slot, how features map to base coordinates.
+
+        Orbit outputs: a permutation per slot (slots whose filters are resampled rather than
+        permuted are dropped). Plain outputs: the matrix J (features × base) of ``row = J base``.
+        Untied layers: None (the base is the weight).
+        """
+        if self.tying is None:
+            return slots, None
+        base_shape = self.module.parametrizations.weight.original.shape
+        if self.tying.transposed:
+            raise NotRefittable("transposed weights are not refitted")
+        if self.orbit_out:
+            count = base_shape[0]
+            probe = torch.arange(self.features, dtype=torch.float64).expand(count, -1).reshape(base_shape)
+            moved = self.tying(probe).reshape(count, self.order, self.features)[0]
+            identity = torch.arange(self.features, dtype=torch.float64)
+            if not torch.equal(moved[0], identity):
+                raise NotRefittable("the base of this tying is not the slot-0 filter")
+            kept = [s for s in slots if torch.equal(moved[s].sort().values, identity)]
+            return kept, [moved[s].long().argsort() for s in kept]
+        count, width = base_shape[0], _prod(tuple(base_shape[1:]))
+        design = torch.zeros(self.features, width, dtype=torch.float64)
+        for start in range(0, width, count):
+            columns = torch.arange(start, min(start + count, width))
+            probe = torch.zeros(count, width, dtype=torch.float64)
+            probe[torch.arange(columns.numel()), columns] = 1.0
+            full = self.tying(probe.reshape(base_shape)).reshape(count, self.features)
+            design[:, columns] = full[:columns.numel()].T
+        return slots, design
+
+    def _row_group(self, rows: torch.Tensor, slot: int) -> torch.Tensor:
+        """The conv group whose inputs row ``rows`` reads in slot ``slot``."""
+        channel = rows * self.order + slot if self.orbit_out else rows
+        return channel // self.out_per_group
+
+    # -- accumulation ---------------------------------------------------------------------------
+    def unfold(self, inputs: torch.Tensor) -> torch.Tensor:
+        """The features of a batch: (batch, conv groups, features, positions)."""
+        if not self.is_conv:
+            return inputs.reshape(inputs.shape[0], 1, -1, 1)
+        conv = self.module
+        mode = "constant" if conv.padding_mode == "zeros" else conv.padding_mode
+        padded = F.pad(inputs, conv._reversed_padding_repeated_twice, mode=mode)
+        patches = F.unfold(padded, conv.kernel_size, dilation=conv.dilation, stride=conv.stride)
+        return patches.reshape(inputs.shape[0], self.groups, self.features, -1)
+
+    def add(self, inputs: torch.Tensor, outputs: dict[int, torch.Tensor]) -> None:
+        """Accumulate one batch: the converted input, and per slot the original's aligned output (B, C, ...)."""
+        u = self.unfold(inputs.float())
+        batch, _, _, positions = u.shape
+        self.gram += torch.einsum("bgfl,bghl->gfh", u, u).double()
+        self.sums += u.sum((0, 3)).double()
+        self.count += batch * positions
+        for i, slot in enumerate(self.slots):
+            target = outputs[slot].float().reshape(batch, outputs[slot].shape[1], -1)[:, self.targets]
+            if target.shape[-1] != positions:
+                raise NotRefittable(f"the original's output has {target.shape[-1]} positions, the refit {positions}")
+            self.cross[i] += self._cross(u, target, self.row_groups[i]).double()
+            self.target_sums[i] += target.sum((0, 2)).double()
+            self.target_squares[i] += target.square().sum((0, 2)).double()
+
+    def _cross(self, u: torch.Tensor, target: torch.Tensor, row_groups: torch.Tensor) -> torch.Tensor:
+        """Σ over batch and positions of features × target, per row (rows, features)."""
+        if self.groups == 1:
+            return torch.einsum("bfl,brl->rf", u[:, 0], target)
+        order = row_groups.argsort(stable=True)
+        used, per_group = row_groups[order].unique_consecutive(return_counts=True)
+        out = torch.empty(target.shape[1], self.features, dtype=u.dtype)
+        if bool((per_group == per_group[0]).all()):
+            arranged = target[:, order].reshape(target.shape[0], used.numel(), int(per_group[0]), -1)
+            out[order] = torch.einsum("bjfl,bjml->jmf", u[:, used], arranged).reshape(-1, self.features)
+            return out
+        for group, rows in zip(used.tolist(), order.split(per_group.tolist())):
+            out[rows] = torch.einsum("bfl,brl->rf", u[:, group], target[:, rows])
+        return out
+
+    # -- the solve ------------------------------------------------------------------------------
+    def solve(self, ridge: float) -> Solution:
+        """Ridge least squares per row: (G + λI) b = c with λ = ridge × mean diagonal of G (intercept unpenalised)."""
+        if self.count == 0:
+            raise NotRefittable("no calibration data reached this layer")
+        rows, views = self.targets.numel(), len(self.slots)
+        total = self.count * views
+        width = self._width()
+        cross = torch.stack([self._move(i, self.cross[i]) for i in range(views)]).sum(0)   # (rows, width)
+        target_sum, target_square = self.target_sums.sum(0), self.target_squares.sum(0)
+        weights = torch.zeros(rows, width, dtype=torch.float64)
+        intercept = torch.zeros(rows, dtype=torch.float64)
+        fitted_sum = torch.zeros(rows, dtype=torch.float64)
+        fitted_square = torch.zeros(rows, dtype=torch.float64)
+        unique, which = self.row_groups.T.unique(dim=0, return_inverse=True)
+        for k, key in enumerate(unique):
+            members = torch.nonzero(which == k).flatten()
+            gram, sums = self._system(key)
+            rhs = cross[members]
+            if self.intercept:   # augment with the constant feature
+                gram = torch.cat([torch.cat([gram, sums[:, None]], 1),
+                                  torch.cat([sums, torch.tensor([float(total)], dtype=torch.float64)])[None]], 0)
+                rhs = torch.cat([rhs, target_sum[members, None]], 1)
+            solved = _ridge_solve(gram, rhs.T, ridge, width).T
+            weights[members] = solved[:, :width]
+            if self.intercept:
+                intercept[members] = solved[:, width]
+            fitted_square[members] = torch.einsum("ri,ij,rj->r", solved, gram, solved)
+            fitted_sum[members] = solved[:, :width] @ sums + intercept[members] * total
+        residual = target_square - 2 * ((weights * cross).sum(1) + intercept * target_sum) + fitted_square
+        variance = target_square - target_sum.square() / total
+        error = float(residual.sum() / variance.sum().clamp_min(1e-30))
+        return Solution(weights, intercept if self.intercept else None, error, fitted_sum / total,
+                        fitted_square / total, target_sum / total, target_square / total)
+
+    def _width(self) -> int:
+        return self.features if not isinstance(self.actions, torch.Tensor) else self.actions.shape[1]
+
+    def _move(self, view: int, cross: torch.Tensor) -> torch.Tensor:
+        """Feature-side products of one slot in base coordinates."""
+        if self.actions is None:
+            return cross
+        if isinstance(self.actions, torch.Tensor):
+            return cross @ self.actions
+        return cross[:, self.actions[view]]
+
+    def _system(self, key: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """Gram matrix and feature sums, in base coordinates, of the rows reading conv groups ``key`` (one per slot)."""
+        gram, sums = 0, 0
+        for view, group in enumerate(key.tolist()):
+            g, s = self.gram[group], self.sums[group]
+            if isinstance(self.actions, torch.Tensor):
+                g, s = self.actions.T @ g @ self.actions, s @ self.actions
+            elif self.actions is not None:
+                index = self.actions[view]
+                g, s = g[index][:, index], s[index]
+            gram, sums = gram + g, sums + s
+        return gram, sums
+
+
+def _ridge_solve(gram: torch.Tensor, cross: torch.Tensor, ridge: float, penalised: int) -> torch.Tensor:
+    """Solve (G + λ D) b = c, D the identity on the first ``penalised`` coordinates."""
+    diagonal = gram.diagonal()[:penalised]
+    scale = float(diagonal.mean()) if penalised else 0.0
+    penalty = torch.zeros(gram.shape[0], dtype=gram.dtype)
+    penalty[:penalised] = ridge * scale if scale > 0 else 1.0
+    system = gram + torch.diag(penalty)
+    factor, info = torch.linalg.cholesky_ex(system)
+    if int(info) == 0:
+        return torch.cholesky_solve(cross, factor)
+    return torch.linalg.lstsq(system, cross).solution
+
+
+def _prod(shape: tuple[int, ...]) -> int:
+    out = 1
+    for s in shape:
+        out *= s
+    return out
