@@ -45,6 +45,7 @@ def main(quick: bool = typer.Option(False, "--quick", help="Smoke run: resnet18 
             plain = getattr(torchvision.models, name)(weights=None).eval()
             original = state_dict_bytes(plain)
             for group in groups:
+                harness.progress(f"{name} under {group}: converting and saving")
                 converted, plan = convert(plain, group, "channels", "invariant", torch.randn(1, 3, size, size),
                                           match=False)
                 path = save(converted, plan, Path(folder) / f"{name}-{group}.orb", reference=f"torchvision:{name}")

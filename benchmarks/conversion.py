@@ -60,6 +60,13 @@ def measure_in_fresh_process(name: str, group: str, size: int, match: bool) -> d
     return json.loads(done.stdout.strip().splitlines()[-1])
 
 
+def torch_import_peak_mb() -> float:
+    """Peak resident memory of a fresh interpreter that only imports torch, MiB (the floor of every row)."""
+    command = [sys.executable, "-c", "import resource, torch; "
+               "print(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024)"]
+    return float(subprocess.run(command, capture_output=True, text=True, check=True).stdout)
+
+
 def main(
     quick: bool = typer.Option(False, "--quick", help="Smoke run: resnet18 only, one run per setting."),
     runs: int = typer.Option(0, "--runs", help="Fresh-process runs per setting (0: 3, or 1 with --quick)."),
@@ -80,12 +87,14 @@ def main(
         "runs": f"{runs} per setting, each in a fresh process; median (quartiles)",
         "peak memory": "resource.getrusage ru_maxrss: the whole process (torch, model, conversion) and the rise "
                        "during convert()",
+        "peak of a process that only imports torch": f"{torch_import_peak_mb():.0f} MiB",
     })
     table = harness.markdown_table("model", "matching", f"convert() wall s (< {SECONDS_MAX:.0f})", "convert() CPU s",
                                    f"process peak MiB (< {PEAK_MB_MAX:.0f})", "rise during convert() MiB",
                                    "peak before convert() MiB")
     for name in names:
         for match in (True, False):
+            harness.progress(f"{name}, matching {'on' if match else 'off'}: {runs} fresh processes")
             results = [measure_in_fresh_process(name, group, size, match) for _ in range(runs)]
 
             def spread(key: str) -> harness.Spread:

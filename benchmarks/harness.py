@@ -40,6 +40,12 @@ THREADS = 2
 """Intra-op threads every benchmark uses (``torch.set_num_threads``), stated in every header."""
 
 console = Console(width=200, highlight=False, soft_wrap=True)
+_progress = Console(stderr=True, highlight=False)
+
+
+def progress(message: str) -> None:
+    """A progress line on standard error (the tables go to standard output)."""
+    _progress.print(f"[{datetime.datetime.now():%H:%M:%S}] {message}")
 
 
 def fix_threads(threads: int = THREADS) -> None:

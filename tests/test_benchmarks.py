@@ -1,0 +1,98 @@
+"""The benchmark scripts' ``--quick`` modes run and print complete tables.
+
+Timing targets are judged by the scripts themselves (benchmarks/README.md), never here: these tests
+only keep the scripts working and check the figures that do not depend on the machine.
+"""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+import torch
+
+BENCHMARKS = Path(__file__).resolve().parent.parent / "benchmarks"
+
+pytestmark = pytest.mark.slow
+
+
+def run_quick(script: str) -> str:
+    """Run ``benchmarks/<script> --quick`` with this interpreter and return its standard output."""
+    done = subprocess.run([sys.executable, str(BENCHMARKS / script), "--quick"], capture_output=True, text=True,
+                          timeout=900, check=False)
+    assert done.returncode == 0, done.stderr[-3000:]
+    return done.stdout
+
+
+def rows(output: str, first_cell: str) -> list[list[str]]:
+    """Cells of every Markdown table row in ``output`` whose first cell is ``first_cell``."""
+    found = []
+    for line in output.splitlines():
+        cells = [cell.strip() for cell in line.strip().strip("|").split("|")]
+        if line.lstrip().startswith("|") and cells[0] == first_cell:
+            found.append(cells)
+    return found
+
+
+def leading_number(cell: str) -> float:
+    """The median at the start of a cell such as '12.3 (11.0–14.1) met'."""
+    return float(cell.split()[0].replace(",", ""))
+
+
+def test_checkpoint_size_quick_and_the_header():
+    output = run_quick("checkpoint_size.py")
+    assert rows(output, "torch threads")[0][1].startswith("2 ")
+    assert int(rows(output, "cores (nproc)")[0][1]) >= 1
+    assert rows(output, "torch")[0][1] == torch.__version__
+    (row,) = rows(output, "resnet18")
+    _, group, original_params, converted_params, original_mb, file_mb, ratio, baked_mb = row
+    assert group == "d4"
+    # torchvision's resnet18 has 11,689,512 parameters (torchvision model documentation; number from memory)
+    assert original_params == "11,689,512"
+    # float32 storage: 4 bytes per parameter plus the batch-norm buffers (common practice: torch.save of a state dict)
+    assert 4 * 11_689_512 / 1e6 < float(original_mb) < 4 * 11_689_512 / 1e6 + 0.5
+    # the channels budget stores about 1/|G| of the numbers (|G| = 8 for d4); the file adds a JSON plan
+    assert 1 / 8 <= float(ratio) < 1 / 8 + 0.02
+    assert float(ratio) == pytest.approx(float(file_mb) / float(original_mb), abs=2e-3)
+    # baking expands every weight again: same width as the original, so the same number of values
+    assert float(baked_mb) == pytest.approx(float(original_mb), rel=0.01)
+    assert int(converted_params.replace(",", "")) < int(original_params.replace(",", "")) / 7
+
+
+def test_inference_quick():
+    output = run_quick("inference.py")
+    variants = {row[2]: row for row in rows(output, "resnet18") if len(row) == 5}
+    for batch in ("1", "4"):
+        for label in ("original", "d4 converted, tying cached", "d4 converted, baked", "original averaged over d4"):
+            row = next(r for r in rows(output, "resnet18") if len(r) == 5 and r[1] == batch and r[2] == label)
+            assert leading_number(row[3]) > 0 and leading_number(row[4]) > 0
+    assert any(label.startswith("d4 expanding all tied weights") for label in variants)
+    ratio_rows = [row for row in rows(output, "resnet18") if len(row) == 7]
+    assert len(ratio_rows) == 4   # batches 1 and 4, wall and CPU
+    for row in ratio_rows:
+        assert row[2].startswith("d4")
+        for cell in row[3:]:
+            assert leading_number(cell) > 0
+            assert cell.endswith(" met") or cell.endswith(" NOT met")
+
+
+def test_training_step_quick():
+    output = run_quick("training_step.py")
+    labels = {row[1] for row in rows(output, "resnet18") if len(row) == 4}
+    assert labels == {"original", "d4 tied", "d4 baked", "d4 expansion alone (forward + backward)"}
+    ratio_rows = [row for row in rows(output, "resnet18") if len(row) == 5]
+    assert len(ratio_rows) == 2   # wall and CPU
+    for row in ratio_rows:
+        assert all(leading_number(cell) > 0 for cell in row[2:])
+
+
+def test_conversion_quick():
+    table = {row[1]: row for row in rows(run_quick("conversion.py"), "resnet18")}
+    assert set(table) == {"on", "off"}
+    for row in table.values():
+        wall, cpu, peak, rise, before = (leading_number(cell) for cell in row[2:])
+        assert wall > 0 and cpu > 0
+        assert before > 0 and rise >= 0
+        assert peak == pytest.approx(rise + before, abs=2)
