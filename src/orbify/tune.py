@@ -39,6 +39,8 @@ from .tune_display import Display
 SCHEDULES = ("cosine", "one-cycle", "constant")
 CHECKPOINT_KIND = "orbify tune checkpoint"
 CHECKPOINT_VERSION = 1
+RECALIBRATION_IMAGES = 4096
+"""Batch-norm statistics are re-estimated on at most this many training images, evenly spread (every process alike)."""
 
 
 @dataclass(frozen=True)
@@ -155,7 +157,8 @@ def tune(student: nn.Module, teacher_model: nn.Module, group: str | Group, image
         resume: continue from ``checkpoint_path`` when it exists (a fresh start when it does not),
             exactly as an uninterrupted run would have gone on.
         force: start afresh even though ``checkpoint_path`` exists (it is replaced).
-        recalibrate: re-estimate batch-norm statistics on the training images before the first epoch.
+        recalibrate: re-estimate batch-norm statistics on the training images (at most
+            :data:`RECALIBRATION_IMAGES`) before the first epoch.
         progress: show rich progress bars (rank 0 only).
         distributed: "auto" (join torchrun's process group when launched by it), True or False.
         device: where to compute; None = ``cuda:LOCAL_RANK`` where CUDA exists, else the CPU.
@@ -233,8 +236,9 @@ class _Run:
         state = self._start(result, resume=resume, force=force)
         torch.manual_seed(options.seed + world.rank)
         if state is None and recalibrate:
-            recalibrate_batch_norm(self.student, (self.images[self.train[batch]].to(world.device)
-                                                  for batch in fixed_batches(len(self.train), options.batch_size)))
+            chosen = self.train[torch.linspace(0, len(self.train) - 1, min(len(self.train), RECALIBRATION_IMAGES)).long()]
+            recalibrate_batch_norm(self.student, (self.images[chosen[batch]].to(world.device)
+                                                  for batch in fixed_batches(len(chosen), options.batch_size)))
         if state is None:
             result.before = self._evaluate()
         model = self.student if world.size == 1 else DistributedDataParallel(
