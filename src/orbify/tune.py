@@ -235,11 +235,9 @@ class _Run:
                             len(self.train), len(self.held_out), world.rank)
         state = self._start(result, resume=resume, force=force)
         torch.manual_seed(options.seed + world.rank)
-        if state is None and recalibrate:
-            chosen = self.train[torch.linspace(0, len(self.train) - 1, min(len(self.train), RECALIBRATION_IMAGES)).long()]
-            recalibrate_batch_norm(self.student, (self.images[chosen[batch]].to(world.device)
-                                                  for batch in fixed_batches(len(chosen), options.batch_size)))
         if state is None:
+            if recalibrate:
+                self._recalibrate()
             result.before = self._evaluate()
         model = self.student if world.size == 1 else DistributedDataParallel(
             self.student, device_ids=[world.device] if world.device.type == "cuda" else None)
@@ -289,6 +287,13 @@ class _Run:
         return digest.hexdigest()
 
     # -- training -----------------------------------------------------------------------------
+    def _recalibrate(self) -> None:
+        """Batch-norm statistics from at most RECALIBRATION_IMAGES evenly spread training images (alike on every process)."""
+        count = min(len(self.train), RECALIBRATION_IMAGES)
+        chosen = self.train[torch.linspace(0, len(self.train) - 1, count).long()]
+        recalibrate_batch_norm(self.student, (self.images[chosen[batch]].to(self.world.device)
+                                              for batch in fixed_batches(count, self.options.batch_size)))
+
     def _train_epoch(self, model: nn.Module, optimiser: torch.optim.Optimizer, scheduler, sampler: DistributedSampler,
                      display: Display) -> float:
         device = self.world.device
