@@ -39,7 +39,7 @@ from orbify import recalibrate_batch_norm  # noqa: E402
 THREADS = 2
 """Intra-op threads every benchmark uses (``torch.set_num_threads``), stated in every header."""
 
-console = Console(width=200, highlight=False, soft_wrap=True)
+console = Console(width=1000, highlight=False, soft_wrap=True)   # wide: tables print unwrapped
 _progress = Console(stderr=True, highlight=False)
 
 
@@ -97,11 +97,13 @@ def time_once(fn: Callable[[], object]) -> tuple[float, float]:
     return time.perf_counter() - wall, time.process_time() - cpu
 
 
-def interleaved(variants: dict[str, Callable[[], object]], rounds: int, warmup: int = 1) -> dict[str, Samples]:
-    """Time every variant ``rounds`` times, one call each per round, after ``warmup`` untimed calls each.
+def interleaved(variants: dict[str, Callable[[], object]], rounds: int, warmup: int = 1,
+                calls: int = 1) -> dict[str, Samples]:
+    """Time every variant ``rounds`` times after ``warmup`` untimed calls each; one sample per variant per round.
 
-    The order of the variants is rotated from round to round so that no variant always runs
-    first (or always right after a heavy one).
+    A sample is the mean over ``calls`` consecutive calls (more than one for short calls, whose
+    single timings scatter). The order of the variants is rotated from round to round so that no
+    variant always runs first (or always right after a heavy one).
     """
     names = list(variants)
     for _ in range(warmup):
@@ -110,9 +112,9 @@ def interleaved(variants: dict[str, Callable[[], object]], rounds: int, warmup: 
     samples = {name: Samples() for name in names}
     for r in range(rounds):
         for name in names[r % len(names):] + names[:r % len(names)]:
-            wall, cpu = time_once(variants[name])
-            samples[name].wall.append(wall)
-            samples[name].cpu.append(cpu)
+            wall, cpu = time_once(lambda: [variants[name]() for _ in range(calls)])
+            samples[name].wall.append(wall / calls)
+            samples[name].cpu.append(cpu / calls)
     return samples
 
 
@@ -146,7 +148,7 @@ def verdict(value: float, target: float, at_most: bool) -> str:
 
 
 def markdown_table(*columns: str) -> Table:
-    """A rich table that prints as a Markdown table (pasteable into the README)."""
+    """A rich table that prints as a Markdown table (pasteable into the README; no '|' inside cells)."""
     return Table(*columns, box=box.MARKDOWN)
 
 
