@@ -1,0 +1,189 @@
+"""``orbify convert``: turn a plain model into its rotation-tied counterpart and save it.
+
+The command parses its options, picks the input size (see :func:`choose_input_size`), calls
+:func:`orbify.convert`, measures the result and writes it with :func:`orbify.save`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Optional
+
+import torch
+import typer
+from rich.table import Table
+from torch import nn
+
+from ..check import CheckReport, check_model
+from ..convert import convert
+from ..errors import OptionError, OutputError
+from ..plan import ConversionPlan
+from ..report import error, ratio, si
+from ..saving import is_converted_file, save
+from ..sizes import SizeChecker
+from ..sources import TORCHVISION_PREFIX
+from .app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console
+from .models import read_model
+
+IMAGENET_SIZE = 224
+"""The usual input side of ImageNet backbones (torchvision's classification models; common practice)."""
+
+EXAMPLE_SIZE = 33
+"""The tile side of the bundled example (see :mod:`orbify.example.data`)."""
+
+
+@dataclass(frozen=True)
+class SizeChoice:
+    """The input side a conversion uses and, in words, why."""
+
+    size: int
+    reason: str
+
+
+def usual_input_size(source: str) -> tuple[int, str]:
+    """The input side the architecture is usually run at, with what that guess rests on.
+
+    ``example`` → 33 (its tile size); ``torchvision:NAME`` → 224 (ImageNet backbones); anything
+    else → 224, the most common size of pretrained backbones.
+    """
+    if source == "example":
+        return EXAMPLE_SIZE, "the bundled example's tile size"
+    if source.startswith(TORCHVISION_PREFIX):
+        return IMAGENET_SIZE, "the usual input of torchvision's ImageNet backbones"
+    return IMAGENET_SIZE, "the usual input of ImageNet backbones, assumed for a model of unknown origin"
+
+
+def choose_input_size(model: nn.Module, source: str, *, requested: int | None = None,
+                      recipe_size: int | None = None, recipe_name: str | None = None,
+                      channels: int = 3) -> SizeChoice:
+    """Pick the input side for converting ``model`` and say why.
+
+    In order: the ``requested`` size (kept even when unsafe — the reason then names the first
+    strided op that breaks and the nearest safe sizes), the recipe's size, else the safe size
+    nearest :func:`usual_input_size`. A size is *safe* when every strided op samples a grid that
+    quarter turns map onto themselves (:class:`orbify.sizes.SizeChecker`).
+    """
+    checker = SizeChecker(model, channels)
+    if requested is not None:
+        return SizeChoice(requested, "given with --input-size" + _safety(checker, requested))
+    if recipe_size is not None:
+        return SizeChoice(recipe_size, f"the size of recipe {recipe_name!r}" + _safety(checker, recipe_size))
+    usual, why = usual_input_size(source)
+    nearest = checker.safe_sizes(usual, 1)
+    if not nearest:
+        return SizeChoice(usual, f"{why}; no safe size lies near it" + _safety(checker, usual))
+    if nearest[0] == usual:
+        return SizeChoice(usual, f"{why}, and safe")
+    broken = checker.violations(usual)[0]
+    return SizeChoice(nearest[0], f"the safe size nearest {usual} ({why}); {usual} itself is not safe: {broken}")
+
+
+def _safety(checker: SizeChecker, size: int) -> str:
+    """'' for a safe size, else a warning naming the first broken op and the nearest safe sizes."""
+    if checker.is_safe(size):
+        return ", safe"
+    broken = checker.violations(size)
+    first = f": {broken[0]}" if broken else ""
+    nearest = ", ".join(str(s) for s in checker.safe_sizes(size, 3))
+    return (f", NOT safe{first}. The converted model is not exactly equivariant at this size; "
+            f"safe sizes nearby: {nearest or 'none found'}")
+
+
+def input_channels(model: nn.Module) -> int:
+    """Input channels of ``model``: those of its first conv layer, else 3 (RGB)."""
+    for module in model.modules():
+        if isinstance(module, nn.Conv2d):
+            return module.in_channels
+    return 3
+
+
+GROUP_HELP = "The rotation group: d4 (quarter turns and mirror images), c4 (quarter turns), c2, d1, d2; c8, d8, ... rotate approximately."
+BUDGET_HELP = ("channels: same width, ÷|G| parameters, same MACs; params: ≈ same parameters, ×|G| MACs; "
+               "fields: ×|G| width, the original embedded losslessly.")
+HEAD_HELP = "invariant: a classifier whose output ignores the group; map: a dense output (mask) that moves with the input."
+INIT_HELP = ("orbit-average: project the pretrained weights onto the tied ones; embed (fields budget only): "
+             "start exactly at the original averaged over the group.")
+QUICK_CHECK_IMAGES = 2
+"""Random images the command checks the converted output's invariance on (a full check: orbify check)."""
+
+
+@app.command("convert")
+def convert_command(
+    source: str = typer.Argument(..., help=SOURCE_HELP),
+    out: Path = typer.Option(..., "--out", "-o", help="The converted-model file to write (.orb)."),
+    group: str = typer.Option("d4", "--group", "-g", help=GROUP_HELP),
+    budget: str = typer.Option("channels", "--budget", help=BUDGET_HELP),
+    head: str = typer.Option("invariant", "--head", help=HEAD_HELP),
+    init: str = typer.Option("orbit-average", "--init", help=INIT_HELP),
+    input_size: Optional[int] = typer.Option(None, "--input-size", min=1, help="Height and width of the input. "
+                                             "Default: the recipe's size, else the safe size nearest the "
+                                             "architecture's usual one (224 for torchvision backbones, 33 for "
+                                             "'example')."),
+    channels: Optional[int] = typer.Option(None, "--channels", min=1, help="Input channels (default: those of the "
+                                           "first conv)."),
+    stop_at: Optional[str] = typer.Option(None, "--stop-at", help="Convert only up to this graph node or module "
+                                          "path; its orbits are pooled there and the rest stays plain."),
+    weights: Optional[Path] = WeightsOption,
+    trust_pickle: bool = TrustOption,
+    force: bool = ForceOption,
+) -> None:
+    """Convert SOURCE into a rotation-tied model, check its output invariance quickly and save it.
+
+    Prints the chosen input size and why, then a table: parameters and MACs before and after,
+    the worst weight residual (how far the projection moved a layer's weights) and the output's
+    invariance error on random images. The converted model drifts from the original until it is
+    tuned (orbify tune).
+
+    Examples:
+
+      orbify convert example -o example-d4.orb
+
+      orbify convert torchvision:resnet18 --weights resnet18.pt --group c4 -o resnet18-c4.orb
+
+      orbify convert mypackage.models:build_net --weights net.pt --input-size 129 --budget params -o net-d4.orb
+    """
+    refuse_output(out, force, inputs=[Path(source), weights])
+    if is_converted_file(Path(source)):
+        raise OptionError(f"{source!r} is already a converted model",
+                          fix="check, tune or export it (orbify check/tune/export), or convert its plain original")
+    loaded = read_model(source, weights, trust_pickle)
+    original = loaded.module
+    channels = channels or input_channels(original)
+    choice = choose_input_size(original, source, requested=input_size, channels=channels)
+    console.print(f"input size {choice.size}: {choice.reason}", highlight=False)
+    example = torch.zeros(1, channels, choice.size, choice.size)
+    converted, plan = convert(original, group, budget, head, example, init=init, stop_at=stop_at)
+    images = torch.randn(QUICK_CHECK_IMAGES, channels, choice.size, choice.size,
+                         generator=torch.Generator().manual_seed(0))
+    report = check_model(converted, original, plan, images)
+    path = save(converted, plan, out, reference=loaded.reference, check=report.to_dict(), force=force)
+    console.print(conversion_table(report, plan))
+    console.print(f"wrote {path} ({path.stat().st_size:,} bytes). Next: orbify check {path} --original {source}; "
+                  f"orbify tune {path} ...", highlight=False)
+
+
+def refuse_output(out: Path, force: bool, inputs: list[Path | None]) -> None:
+    """Fail before any work when ``out`` exists without ``force``, or names one of the ``inputs`` (never overwritten)."""
+    for given in inputs:
+        if given is not None and given.exists() and out.exists() and out.resolve() == given.resolve():
+            raise OutputError(f"The output {str(out)!r} is an input of this command",
+                              fix="write the converted model to a new file; inputs are never overwritten")
+    if out.exists() and not force:
+        raise OutputError(f"The output file {str(out)!r} already exists",
+                          fix="choose another path, or pass --force to replace it")
+
+
+def conversion_table(report: CheckReport, plan: ConversionPlan) -> Table:
+    """Parameters, MACs, worst weight residual and output invariance error, before and after."""
+    table = Table("", "original", f"converted ({plan.group}, {plan.budget})", title="conversion")
+    table.add_row("parameters", f"{report.params_before:,}", f"{report.params_after:,} ({ratio(report.param_ratio)})")
+    table.add_row("MACs per image", si(report.macs_before), f"{si(report.macs_after)} ({ratio(report.mac_ratio)})")
+    residuals = [(layer.weight_residual, layer.name) for layer in plan.layers if layer.weight_residual is not None]
+    if residuals:
+        worst, name = max(residuals)
+        table.add_row("worst weight residual", "", f"{worst:.2f} ({name})")
+    table.add_row(f"output {report.output_property} error", "",
+                  f"{error(report.invariance_error)} ({report.precision}), "
+                  f"{error(report.invariance_error_float32)} (float32)")
+    return table
