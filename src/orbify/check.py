@@ -240,7 +240,7 @@ def _equivariance(model: nn.Module, layouts: dict[str, Layout], group: Group, im
     """Relative errors for every element, per hooked layer (module path → its output layout) and of the output.
 
     Each error is ``sqrt(Σ‖f(g·x) − g·f(x)‖²) / sqrt(Σ‖f(x)‖²)`` summed over the batches, so it does not
-    depend on the batch size. A dense output moves with the input (``map`` head); otherwise it should not
+    depend on the batch size; the identity (element 0) is not run and counts as 0. A dense output moves with the input (``map`` head); otherwise it should not
     change at all.
     """
     order = group.order
@@ -270,7 +270,7 @@ def _equivariance(model: nn.Module, layouts: dict[str, Layout], group: Group, im
                 current["g"] = None
                 y = _first_tensor(model(batch))
                 out_norm += _masked_norm(y, group) ** 2
-                for g in range(order):
+                for g in range(1, order):   # element 0 is the identity: its error is 0 by definition
                     current["g"] = g
                     yg = _first_tensor(model(group.act_grid(g, batch)))
                     expected = group.act_grid(g, y) if dense_output else y

@@ -14,5 +14,7 @@ from .app import app, main
 # Command modules register themselves on `app` when imported.
 from . import sizes  # noqa: E402,F401
 from . import export  # noqa: E402,F401
+from . import check  # noqa: E402,F401
+from . import summary  # noqa: E402,F401
 
 __all__ = ["app", "main"]
