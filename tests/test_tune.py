@@ -219,3 +219,43 @@ def test_images_must_be_a_float_batch():
     original = tiny_original()
     with pytest.raises(DataError, match="N, C, H, W"):
         tune(tiny_student(original), original, "c4", torch.zeros(10, 9, 9), progress=False)
+
+
+# -- the command line -----------------------------------------------------------------------------------
+def _cli_files(tmp_path):
+    """An .npz of labelled images and the original's weights; the original is the factory 'test_tune:tiny_original'."""
+    images, labels = tiny_data()
+    np.savez(tmp_path / "data.npz", images=images.numpy(), labels=labels.numpy())
+    torch.save(tiny_original().state_dict(), tmp_path / "original.pt")
+    return tmp_path / "data.npz", tmp_path / "original.pt"
+
+
+def test_cli_tunes_a_source_converted_on_the_fly_then_the_saved_file(tmp_path):
+    from typer.testing import CliRunner
+
+    from orbify.cli import app
+    from orbify.saving import load
+
+    runner = CliRunner()
+    data, weights = _cli_files(tmp_path)
+    first = tmp_path / "tuned.orb"
+    common = ["--data", str(data), "--epochs", "1", "--batch-size", "16"]
+    result = runner.invoke(app, ["tune", "test_tune:tiny_original", "--weights", str(weights), "--group", "c4",
+                                 *common, "-o", str(first)])
+    assert result.exit_code == 0, result.output
+    assert "held-out loss" in result.output and first.is_file() and (tmp_path / "tuned.orb.checkpoint").is_file()
+    tuned = load(first)
+    assert tuned.metadata["source"] == "test_tune:tiny_original" and tuned.plan.group == "c4"
+    assert max_invariance_error(tuned.module, parse_group("c4"), tiny_data(8)[0]) < 1e-5
+
+    again = runner.invoke(app, ["tune", "test_tune:tiny_original", "--weights", str(weights), "--group", "c4",
+                                *common, "-o", str(first)])
+    assert again.exit_code != 0 and "already exists" in str(again.exception)
+
+    second = tmp_path / "tuned-again.orb"
+    unweighted = runner.invoke(app, ["tune", str(first), *common, "-o", str(second)])
+    assert unweighted.exit_code != 0 and "--weights" in str(unweighted.exception)
+    result = runner.invoke(app, ["tune", str(first), "--weights", str(weights), "--views", "most-confident",
+                                 "--no-labels", *common, "-o", str(second)])
+    assert result.exit_code == 0, result.output
+    assert "agreement" in result.output and second.is_file()
