@@ -335,6 +335,7 @@ def _drift(original: nn.Module, converted: nn.Module, images: torch.Tensor, labe
     result["top1_agreement"] = float((before.argmax(1) == after.argmax(1)).double().mean())
     result["mean_kl"] = float((log_p.exp() * (log_p - log_q)).sum(1).mean())
     if labels is not None and before.dim() == 2 and int(labels.max()) < before.shape[1]:
+        labels = labels.to(before.device)
         result["accuracy_before"] = float((before.argmax(1) == labels).double().mean())
         result["accuracy_after"] = float((after.argmax(1) == labels).double().mean())
     return result
@@ -361,8 +362,8 @@ def _first_layer_filters(converted: nn.Module, original: nn.Module, plan: Conver
     for layer in plan.layers:
         if layer.op != "Conv2d" or not layer.layout_out.startswith("orbit"):
             continue
-        before = original.get_submodule(layer.target).weight.detach().clone()
-        after = converted.get_submodule(layer.target).weight.detach().clone()
+        before = original.get_submodule(layer.target).weight.detach().cpu().clone()
+        after = converted.get_submodule(layer.target).weight.detach().cpu().clone()
         if after.shape[0] % group.order:
             return None
         return FirstLayerFilters(layer.name, before, after.view(-1, group.order, *after.shape[1:]))

@@ -67,7 +67,8 @@ def check_sections(report: CheckReport) -> list[tuple[str, tuple[str, ...], list
         ("Exactness", ("measure", "value"), [
             (f"output {kind} ({report.precision}, max over {len(report.elements)} elements)",
              error(report.invariance_error)),
-            (f"output {kind} (float32)", error(report.invariance_error_float32)),
+            *([(f"output {kind} (float32)", error(report.invariance_error_float32))]
+              if report.precision != "float32" else []),
             ("worst layer", f"{worst.name} ({error(worst.equivariance_error)})" if worst else "-"),
             ("group", f"{report.group} ({'exact' if report.exact_group else 'interpolated'} on the pixel grid)"),
         ]),

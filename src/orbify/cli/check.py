@@ -94,7 +94,6 @@ def check(
     if inputs is not None:
         images = read_images(inputs, size=input_size, channels=channels or 3, limit=limit,
                              mean=parse_floats(mean, "--mean"), std=parse_floats(std, "--std"))
-        input_size = images.images.shape[-1]
     pair = read_pair(source, original_source, weights, trust_pickle, group, budget, head, init, input_size, channels,
                      images)
     if recalibrate:
