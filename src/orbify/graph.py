@@ -58,23 +58,27 @@ def propagate_shapes(gm: fx.GraphModule, example_input: torch.Tensor) -> None:
         with torch.no_grad():
             ShapeProp(gm).propagate(example_input)
     except Exception as error:
-        node = _failing_node(gm, error)
-        raise InputShapeError(
-            f"The example input of shape {tuple(example_input.shape)} does not run through the model: "
-            f"{_first_line(error)}",
-            where=describe(node) if node is not None else None,
-            fix="give an input of shape (batch, channels, height, width) with the channel count the first layer "
-                "expects, at a size every layer accepts",
-        ) from error
+        raise input_error(gm, tuple(example_input.shape), error) from error
     finally:
         gm.train(training)
 
 
+def input_error(gm: fx.GraphModule, input_shape: tuple[int, ...], error: Exception) -> InputShapeError:
+    """The error for an input that does not run through ``gm``, naming the node where it failed."""
+    node = _failing_node(gm, error)
+    return InputShapeError(
+        f"An input of shape {input_shape} does not run through the model: {_first_line(error)}",
+        where=describe(node) if node is not None else None,
+        fix="give an input of shape (batch, channels, height, width) with the channel count the first layer "
+            "expects (--channels), at a size every layer accepts",
+    )
+
+
 def _failing_node(gm: fx.GraphModule, error: Exception) -> fx.Node | None:
-    """The node an fx.Interpreter was running when ``error`` happened (from the note it attaches)."""
+    """The node an fx.Interpreter was running when ``error`` happened (from the message it appends)."""
     names = {node.name: node for node in gm.graph.nodes}
-    for note in getattr(error, "__notes__", []):
-        match = re.search(r"While executing %(\w+)", note)
+    for text in [str(error), *getattr(error, "__notes__", [])]:
+        match = re.search(r"While executing %(\w+)", text)
         if match and match.group(1) in names:
             return names[match.group(1)]
     return None

@@ -34,7 +34,7 @@ def count_macs(module: nn.Module, example_input: torch.Tensor | tuple[torch.Tens
     module.eval()
     try:
         with torch.no_grad(), parametrize.cached():
-            _expand_parametrized_tensors(module)
+            expand_parametrized_tensors(module)
             with FlopCounterMode(display=False) as counter:
                 module(*inputs)
     finally:
@@ -42,7 +42,7 @@ def count_macs(module: nn.Module, example_input: torch.Tensor | tuple[torch.Tens
     return counter.get_total_flops() // 2
 
 
-def _expand_parametrized_tensors(module: nn.Module) -> None:
+def expand_parametrized_tensors(module: nn.Module) -> None:
     """Compute every parametrized tensor once, filling the ``parametrize.cached()`` cache."""
     for submodule in module.modules():
         if parametrize.is_parametrized(submodule):

@@ -12,6 +12,7 @@ To support a new op, add one entry to :data:`MODULE_RULES`, :data:`FUNCTION_RULE
 from __future__ import annotations
 
 import operator
+import sys
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Callable
 
@@ -166,12 +167,18 @@ def orbit_pool(step: Step) -> Layout:
     return Plain(step.layout.orbits)
 
 
-def _torchvision_rules() -> tuple[dict, dict]:
-    try:
-        from torchvision.ops import StochasticDepth, stochastic_depth
-    except ImportError:  # torchvision is optional
-        return {}, {}
-    return {StochasticDepth: passthrough}, {stochastic_depth: passthrough}
+def _add_torchvision_rules() -> None:
+    """Rules for torchvision's own ops, added once torchvision is in use (it is optional and slow to import)."""
+    if "torchvision" not in sys.modules or _torchvision_added:
+        return
+    from torchvision.ops import StochasticDepth, stochastic_depth
+
+    MODULE_RULES[StochasticDepth] = passthrough
+    FUNCTION_RULES[stochastic_depth] = passthrough
+    _torchvision_added.append(True)
+
+
+_torchvision_added: list[bool] = []
 
 
 _POINTWISE_MODULES = (nn.ReLU, nn.ReLU6, nn.SiLU, nn.GELU, nn.Hardswish, nn.Hardsigmoid, nn.Sigmoid, nn.Tanh,
@@ -215,13 +222,11 @@ METHOD_RULES: dict[str, Rule] = {
     "dim": no_tensor,
 }
 
-_tv_modules, _tv_functions = _torchvision_rules()
-MODULE_RULES.update(_tv_modules)
-FUNCTION_RULES.update(_tv_functions)
 
 
 def rule_for(node: fx.Node, module: nn.Module | None) -> Rule | None:
     """The rule of a node: by module class (most derived first), function or method name."""
+    _add_torchvision_rules()
     if node.op == "call_module":
         for cls in type(module).__mro__:
             if cls in MODULE_RULES:

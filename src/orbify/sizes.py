@@ -15,7 +15,9 @@ import torch
 import torch.nn.functional as F
 from torch import fx, nn
 
-from .graph import describe, trace
+from .errors import InputShapeError
+
+from .graph import describe, input_error, trace
 
 
 @dataclass(frozen=True)
@@ -52,13 +54,25 @@ def _geometry(node: fx.Node, module: nn.Module | None) -> tuple | None:
     return None
 
 
+_SHAPE_KEEPING = (nn.modules.batchnorm._BatchNorm, nn.ReLU, nn.ReLU6, nn.SiLU, nn.GELU, nn.Hardswish,
+                  nn.Hardsigmoid, nn.Sigmoid, nn.Dropout, nn.Identity)
+
+
+class _FirstViolation(Exception):
+    """Stops a check at the first violation when only safety is asked."""
+
+
 class _Checker(fx.Interpreter):
-    def __init__(self, gm: fx.GraphModule):
+    def __init__(self, gm: fx.GraphModule, first_only: bool = False):
         super().__init__(gm)
         self.violations: list[StrideViolation] = []
+        self.first_only = first_only
+        self.extra_traceback = not first_only
 
     def run_node(self, node: fx.Node):
         module = self.module.get_submodule(node.target) if node.op == "call_module" else None
+        if isinstance(module, _SHAPE_KEEPING):
+            return self.env[node.all_input_nodes[0]]   # shapes are all that matter here
         geometry = _geometry(node, module)
         if geometry is not None:
             x = self.env[node.all_input_nodes[0]] if node.all_input_nodes[0] in self.env else None
@@ -66,9 +80,8 @@ class _Checker(fx.Interpreter):
                 self._check(node, tuple(x.shape[-2:]), *geometry)
         if isinstance(module, nn.ConvTranspose2d) and any(_pair(module.output_padding)):
             x = self.env[node.all_input_nodes[0]]
-            self.violations.append(StrideViolation(node.name, describe(node), tuple(x.shape[-2:]),
-                                                   _pair(module.kernel_size), _pair(module.stride),
-                                                   _pair(module.padding)))
+            self._add(StrideViolation(node.name, describe(node), tuple(x.shape[-2:]), _pair(module.kernel_size),
+                                      _pair(module.stride), _pair(module.padding)))
         return super().run_node(node)
 
     def _check(self, node, size, kernel, stride, padding, dilation) -> None:
@@ -76,8 +89,13 @@ class _Checker(fx.Interpreter):
             return
         for h, k, s, p, d in zip(size, kernel, stride, padding, dilation):
             if (h + 2 * p - d * (k - 1) - 1) % s:
-                self.violations.append(StrideViolation(node.name, describe(node), size, kernel, stride, padding))
+                self._add(StrideViolation(node.name, describe(node), size, kernel, stride, padding))
                 return
+
+    def _add(self, violation: StrideViolation) -> None:
+        self.violations.append(violation)
+        if self.first_only:
+            raise _FirstViolation
 
 
 class SizeChecker:
@@ -88,18 +106,24 @@ class SizeChecker:
         self.gm = copy.deepcopy(gm).to("meta").eval()
         self.channels = channels
 
-    def violations(self, size: int | tuple[int, int]) -> list[StrideViolation]:
+    def violations(self, size: int | tuple[int, int], first_only: bool = False) -> list[StrideViolation]:
         """Strided ops that break equivariance at this input size (empty when the size is safe)."""
         h, w = _pair(size)
-        checker = _Checker(self.gm)
-        with torch.no_grad():
-            checker.run(torch.empty(1, self.channels, h, w, device="meta"))
+        checker = _Checker(self.gm, first_only)
+        shape = (1, self.channels, h, w)
+        try:
+            with torch.no_grad():
+                checker.run(torch.empty(shape, device="meta"))
+        except _FirstViolation:
+            pass
+        except Exception as error:
+            raise input_error(self.gm, shape, error) from error
         return checker.violations
 
     def is_safe(self, size: int | tuple[int, int]) -> bool:
         try:
-            return not self.violations(size)
-        except Exception:
+            return not self.violations(size, first_only=True)
+        except InputShapeError:
             return False   # the model does not run at this size at all
 
     def safe_sizes(self, near: int, count: int = 5, span: int = 128) -> list[int]:

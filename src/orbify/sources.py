@@ -23,7 +23,9 @@ from __future__ import annotations
 import difflib
 import importlib
 import inspect
+import os
 import re
+import sys
 from collections.abc import Mapping
 from dataclasses import dataclass
 from pathlib import Path
@@ -162,11 +164,27 @@ def _build_torchvision(name: str) -> nn.Module:
     return builder(**no_download)
 
 
+def _import_with_working_directory(module_name: str):
+    """Import a module the way ``python -m`` would: the working directory is searched too.
+
+    Console scripts leave the working directory off ``sys.path``; a user's own model file in the
+    folder they run ``orbify`` from should still be found.
+    """
+    here = os.getcwd()
+    if here in sys.path or "" in sys.path:
+        return importlib.import_module(module_name)
+    sys.path.insert(0, here)
+    try:
+        return importlib.import_module(module_name)
+    finally:
+        sys.path.remove(here)
+
+
 def _build_factory(spec: str) -> nn.Module:
     """Import ``package.module`` and call ``factory()``; it must return an ``nn.Module``."""
     module_name, attribute_path = spec.split(":", 1)
     try:
-        namespace = importlib.import_module(module_name)
+        namespace = _import_with_working_directory(module_name)
     except ModuleNotFoundError as error:
         if error.name is not None and (module_name == error.name or module_name.startswith(error.name + ".")):
             raise SourceError(

@@ -20,7 +20,7 @@ from torch.utils.flop_counter import FlopCounterMode
 
 from .errors import OrbifyError
 from .graph import trace
-from .measure import _expand_parametrized_tensors, count_params
+from .measure import expand_parametrized_tensors, count_params
 from .plan import ConversionPlan
 
 LAYER_TYPES = (nn.Conv1d, nn.Conv2d, nn.Conv3d, nn.ConvTranspose1d, nn.ConvTranspose2d, nn.ConvTranspose3d,
@@ -136,7 +136,7 @@ def summarize(model: nn.Module, example_input: torch.Tensor, plan: ConversionPla
     model.eval()
     try:
         with torch.no_grad(), parametrize.cached():
-            _expand_parametrized_tensors(model)
+            expand_parametrized_tensors(model)
             with FlopCounterMode(display=False) as counter:
                 model(example_input)
     finally:

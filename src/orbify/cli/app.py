@@ -9,10 +9,34 @@ from typing import Optional
 
 import typer
 from rich.console import Console
+from typer.core import TyperGroup
 
 from ..errors import OrbifyError
 
+console = Console()
+errors = Console(stderr=True)
+_state = {"debug": False}
+
+
+class _OrbifyGroup(TyperGroup):
+    """Runs a command and turns an :class:`OrbifyError` into one paragraph and its exit code.
+
+    Doing this inside the click group (rather than around ``app()``) means every way of running
+    the CLI — the console script, ``python -m orbify.cli``, ``typer.testing.CliRunner`` — behaves alike.
+    """
+
+    def invoke(self, ctx):
+        try:
+            return super().invoke(ctx)
+        except OrbifyError as error:
+            if _state["debug"]:
+                errors.print(traceback.format_exc(), highlight=False, markup=False)
+            errors.print(f"[bold red]error:[/] {error}", highlight=False, soft_wrap=True)
+            ctx.exit(error.exit_code)
+
+
 app = typer.Typer(
+    cls=_OrbifyGroup,
     name="orbify",
     help="Turn a trained plain CNN into a rotation-tied (group-equivariant) one, prove it, tune it, export it.",
     no_args_is_help=True,
@@ -20,11 +44,6 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
     rich_markup_mode="rich",
 )
-console = Console()
-errors = Console(stderr=True)
-_state = {"debug": False}
-
-
 @app.callback()
 def _root(debug: bool = typer.Option(False, "--debug", help="Show the full traceback when a command fails.")) -> None:
     _state["debug"] = debug
@@ -41,20 +60,10 @@ TrustOption = typer.Option(False, "--trust-pickle", help="Allow loading a whole 
 ForceOption = typer.Option(False, "--force", help="Overwrite the output if it exists.")
 
 
-def fail(error: OrbifyError) -> None:
-    """Print an orbify error as one paragraph and exit with its code."""
-    errors.print(f"[bold red]error:[/] {error}", highlight=False, soft_wrap=True)
-    raise SystemExit(error.exit_code)
-
-
 def main(argv: Optional[list[str]] = None) -> None:
-    """Console-script entry point."""
+    """Console-script entry point (orbify errors are handled by the command group itself)."""
     try:
         app(args=argv, standalone_mode=True)
-    except OrbifyError as error:
-        if _state["debug"]:
-            traceback.print_exc()
-        fail(error)
     except KeyboardInterrupt:
         errors.print("interrupted")
         raise SystemExit(130)
