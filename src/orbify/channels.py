@@ -1,10 +1,12 @@
 """Which original channels each converted channel stands for (used to carry weights over).
 
 A :class:`ChannelMap` belongs to a value in the converted graph. ``source[p]`` is the original
-channel that new channel p copies (−1: none); ``inflow`` (original × new) is how a layer that
-reads the value turns its original input weights into new ones: ``W_new = W_orig @ inflow``
+channel that new channel p copies (−1: none); ``inflow`` (original × new, sparse) is how a layer
+that reads the value turns its original input weights into new ones: ``W_new = W_orig @ inflow``
 along the input-channel axis. Replicated channels split their weight, pooled orbits sum it, so a
-layer fed with copies of its original inputs computes what it computed before.
+layer fed with copies of its original inputs computes what it computed before. An *embedded*
+map (:meth:`ChannelMap.embedded`) feeds slot 0 of every orbit only: the lossless ``embed``
+initialisation reads the original features from slot 0 (design.md section 7).
 """
 
 from __future__ import annotations
@@ -17,7 +19,7 @@ import torch
 @dataclass
 class ChannelMap:
     source: torch.Tensor    # (new,) long
-    inflow: torch.Tensor    # (original, new) float
+    inflow: torch.Tensor    # (original, new) float, sparse COO, coalesced
     spatial: int = 1        # flat values: each channel spans this many consecutive positions
 
     @property
@@ -30,21 +32,32 @@ class ChannelMap:
 
     @classmethod
     def identity(cls, channels: int) -> "ChannelMap":
-        return cls(torch.arange(channels), torch.eye(channels))
+        index = torch.arange(channels)
+        return cls(index, _sparse(index, index, torch.ones(channels), channels, channels))
 
     @classmethod
     def from_source(cls, source: torch.Tensor, original: int) -> "ChannelMap":
         """Each new channel p copies original channel source[p]; copies share its outgoing weight."""
+        return cls._feeding(source.long(), original, source.long() >= 0)
+
+    @classmethod
+    def embedded(cls, source: torch.Tensor, original: int, order: int) -> "ChannelMap":
+        """Like :meth:`from_source`, but only slot 0 of every orbit of ``order`` slots feeds the next layer."""
         source = source.long()
-        inflow = torch.zeros(original, source.numel())
-        valid = source >= 0
-        inflow[source[valid], torch.nonzero(valid).flatten()] = 1.0
-        counts = inflow.sum(1, keepdim=True).clamp_min(1.0)
-        return cls(source, inflow / counts)
+        slot_zero = torch.arange(source.numel()) % order == 0
+        return cls._feeding(source, original, (source >= 0) & slot_zero)
+
+    @classmethod
+    def _feeding(cls, source: torch.Tensor, original: int, feeds: torch.Tensor) -> "ChannelMap":
+        new = torch.nonzero(feeds).flatten()
+        old = source[new]
+        counts = torch.bincount(old, minlength=original).clamp_min(1).to(torch.float32)
+        return cls(source, _sparse(old, new, 1.0 / counts[old], original, source.numel()))
 
     def pooled(self, order: int) -> "ChannelMap":
         """The map after an orbit pool: orbit o stands for what its slots stood for."""
-        inflow = self.inflow.reshape(self.original, -1, order).sum(2)
+        rows, cols = self.inflow.indices()
+        inflow = _sparse(rows, cols // order, self.inflow.values(), self.original, self.new // order)
         return ChannelMap(self.source.reshape(-1, order)[:, 0].clone(), inflow)
 
     def flattened(self, positions: int) -> "ChannelMap":
@@ -52,12 +65,26 @@ class ChannelMap:
 
     @classmethod
     def concat(cls, maps: list["ChannelMap"]) -> "ChannelMap":
-        offsets, sources, total = 0, [], 0
+        sources, rows, cols, values = [], [], [], []
+        original = new = 0
         for m in maps:
-            sources.append(torch.where(m.source >= 0, m.source + offsets, m.source))
-            offsets += m.original
-        inflow = torch.block_diag(*[m.inflow for m in maps])
-        return cls(torch.cat(sources), inflow)
+            sources.append(torch.where(m.source >= 0, m.source + original, m.source))
+            r, c = m.inflow.indices()
+            rows.append(r + original)
+            cols.append(c + new)
+            values.append(m.inflow.values())
+            original += m.original
+            new += m.new
+        return cls(torch.cat(sources), _sparse(torch.cat(rows), torch.cat(cols), torch.cat(values), original, new))
+
+    def dense_inflow(self) -> torch.Tensor:
+        """The inflow as a dense (original, new) matrix (for inspection and tests)."""
+        return self.inflow.to_dense()
+
+
+def _sparse(rows: torch.Tensor, cols: torch.Tensor, values: torch.Tensor, original: int, new: int) -> torch.Tensor:
+    return torch.sparse_coo_tensor(torch.stack([rows, cols]), values.to(torch.float32), (original, new),
+                                   check_invariants=False).coalesce()   # indices built here, valid by construction
 
 
 def budget_source(original: int, orbits: int, order: int, budget: str) -> torch.Tensor:
@@ -71,21 +98,27 @@ def budget_source(original: int, orbits: int, order: int, budget: str) -> torch.
     return torch.arange(orbits * order) % original
 
 
-def rows(tensor: torch.Tensor, source: torch.Tensor) -> torch.Tensor:
-    """Rows of ``tensor`` picked by ``source`` along axis 0, zero where source is −1."""
+def rows(tensor: torch.Tensor, source: torch.Tensor, fill: float = 0.0) -> torch.Tensor:
+    """Rows of ``tensor`` picked by ``source`` along axis 0, ``fill`` where source is −1 (values copied exactly)."""
+    valid = source >= 0
+    if bool(valid.all()):
+        return tensor[source]
     picked = tensor[source.clamp_min(0)]
-    mask = (source >= 0).to(tensor.dtype).reshape(-1, *([1] * (tensor.dim() - 1)))
-    return picked * mask
+    return torch.where(valid.reshape(-1, *([1] * (tensor.dim() - 1))), picked, torch.full_like(picked, fill))
 
 
 def feed(weight: torch.Tensor, inflow: ChannelMap) -> torch.Tensor:
-    """Apply an input map to a dense weight (out, in_original·spatial, *kernel) → (out, in_new·spatial, *kernel)."""
-    out = weight.shape[0]
-    kernel = weight.shape[2:]
+    """Apply an input map to a dense weight (out, in_original·spatial, *kernel) → (out, in_new·spatial, *kernel).
+
+    Sparse: every stored inflow entry moves one input channel's weights (times its value), so the
+    cost is proportional to the new weight's size, not to original × new.
+    """
+    out, kernel = weight.shape[0], weight.shape[2:]
     w = weight.reshape(out, inflow.original, inflow.spatial, *kernel)
-    mixed = torch.einsum("oi...,in->on...", w.movedim(2, -1), inflow.inflow.to(weight.dtype))
-    # movedim put 'spatial' last; the einsum keeps it last; move it back after the channel axis
-    mixed = mixed.movedim(-1, 2)
+    old, new = inflow.inflow.indices()
+    values = inflow.inflow.values().to(weight.dtype).reshape(1, -1, *([1] * (w.dim() - 2)))
+    mixed = w.new_zeros(out, inflow.new, *w.shape[2:])
+    mixed.index_add_(1, new, w.index_select(1, old) * values)
     return mixed.reshape(out, inflow.new * inflow.spatial, *kernel)
 
 

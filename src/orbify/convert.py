@@ -2,31 +2,40 @@
 
 ``convert(model, group, budget, head, example_input)`` traces a copy of ``model``, walks the graph
 once in order applying the op rules of :mod:`orbify.rules`, replaces every conv / linear / norm
-by its tied counterpart with the pretrained weights carried over, and returns the converted
+by its tied counterpart with the pretrained weights carried over (:mod:`orbify.transfer`:
+orbit averaging with channel matching, or the lossless embedding), and returns the converted
 ``GraphModule`` with a :class:`~orbify.plan.ConversionPlan`. The original model is untouched.
 """
 
 from __future__ import annotations
+
+from collections.abc import Iterable
+from dataclasses import dataclass, field
 
 import torch
 from torch import fx, nn
 from torch.nn.utils import parametrize
 
 from .channels import ChannelMap, budget_source, dense_from_groups, feed, groups_from_dense, rows
-from .errors import InputShapeError, OptionError, UnsupportedOpError, WidthError
+from .errors import InputShapeError, OptionError, OrbifyError, UnsupportedOpError, WidthError
 from .graph import describe, shape, trace
 from .groups import Group, parse_group
 from .layouts import Flat, Layout, Orbit, Plain
 from .modules import OrbitBatchNorm, OrbitPool, conv_fibre, tie_affine, tie_conv, tie_linear
 from .plan import BUDGETS, HEADS, INITS, ConversionPlan, LayerPlan, check_choice, orbits_for
+from .recalibrate import recalibrate_batch_norm
 from .rules import CONVERT_UP_TO, Step, no_tensor, rule_for
+from .transfer import (ChannelClasses, MatchTerm, chooses_channels, is_depthwise, load_weight,
+                       match_channels, tied_residual)
 
-_LAYER_TYPES = (nn.Conv2d, nn.ConvTranspose2d, nn.Linear)
+#: Channel matching is on unless ``match=False`` (see DEVELOPERS.md, "Weight transfer", for the measurement).
+MATCH_DEFAULT = True
 
 
 def convert(model: nn.Module, group: str | Group = "d4", budget: str = "channels", head: str = "invariant",
-            example_input: torch.Tensor | None = None, *, init: str = "orbit-average", stop_at: str | None = None,
-            leaf_types: tuple[type, ...] = ()) -> tuple[fx.GraphModule, ConversionPlan]:
+            example_input: torch.Tensor | None = None, *, init: str = "orbit-average", match: bool = MATCH_DEFAULT,
+            carry_weights: bool = True, calibration: Iterable[torch.Tensor] | None = None,
+            stop_at: str | None = None, leaf_types: tuple[type, ...] = ()) -> tuple[fx.GraphModule, ConversionPlan]:
     """Convert a plain model into its tied counterpart under ``group``.
 
     Args:
@@ -37,7 +46,16 @@ def convert(model: nn.Module, group: str | Group = "d4", budget: str = "channels
         head: "invariant" (the output does not change under the group) or "map" (a dense
             output, such as a mask, that moves with the input).
         example_input: a (B, C, H, W) tensor; shapes are propagated with it.
-        init: "orbit-average" (project the pretrained weights) or "embed" (``fields`` budget only).
+        init: "orbit-average" (project the pretrained weights) or "embed" (``fields`` budget only:
+            slot 0 of every orbit copies the original, and the converted model equals the original
+            averaged over the group).
+        match: with "orbit-average", choose which original channels share an orbit (and in which
+            slot) to minimise the weight residual, layer by layer; False keeps the identity order.
+            The plan records each layer's residual with the chosen and with the identity assignment.
+        carry_weights: False leaves the new layers at their fresh initialisation (no transfer, no
+            matching): the structure only, for loading a saved state dict.
+        calibration: batches of unlabeled images (tensors shaped like ``example_input``); the
+            converted model's batch-norm statistics are re-estimated on them (recorded in the plan).
         stop_at: convert only up to this node (name or module path); its orbit is pooled there and
             everything after it stays plain.
         leaf_types: module classes to keep as single graph nodes when tracing.
@@ -57,22 +75,71 @@ def convert(model: nn.Module, group: str | Group = "d4", budget: str = "channels
         raise InputShapeError(f"An example input of shape (batch, channels, height, width) is needed, got {got}",
                               fix="pass example_input=torch.randn(1, 3, S, S) at a safe size S (see safe_sizes)")
     gm = trace(model, example_input, leaf_types)
-    converter = Converter(gm, group, budget, head, init, tuple(example_input.shape), stop_at)
+    converter = Converter(gm, group, budget, head, init, tuple(example_input.shape), stop_at, match, carry_weights)
     converter.run()
     gm.train(model.training)
+    if calibration is not None:
+        _recalibrate(gm, calibration, converter.plan)
     return gm, converter.plan
+
+
+def _recalibrate(gm: fx.GraphModule, batches: Iterable[torch.Tensor], plan: ConversionPlan) -> None:
+    seen = recalibrate_batch_norm(gm, batches)
+    norms = sum(isinstance(m, nn.modules.batchnorm._BatchNorm) for m in gm.modules())
+    if norms:
+        plan.notes.append(f"batch-norm statistics of {norms} layers re-estimated on {seen} calibration images")
+    else:
+        plan.notes.append("calibration images given, but the model has no batch norm to recalibrate")
+
+
+@dataclass
+class _Layer:
+    """A conv or linear being converted: its new tied module and what carrying weights into it needs."""
+
+    old: nn.Module
+    new: nn.Module
+    lin: Layout
+    lout: Layout
+    groups: int = 1
+    notes: list[str] = field(default_factory=list)
+    fed: tuple[ChannelMap, torch.Tensor] | None = None   # (input map, weight in original row order), kept for reuse
+
+    @property
+    def transposed(self) -> bool:
+        return isinstance(self.old, nn.ConvTranspose2d)
+
+    @property
+    def depthwise(self) -> bool:
+        return is_depthwise(self.old)
+
+    def weight(self, in_map: ChannelMap, source: torch.Tensor | None) -> torch.Tensor:
+        """The original weight, out-first, output rows picked by ``source`` (None: original order), inputs fed."""
+        if self.fed is not None and self.fed[0] is in_map and source is not None and \
+                (self.groups == 1 or source.numel() == self.fed[1].shape[0]):
+            return rows(self.fed[1], source)   # rows and inputs commute; grouped blocks agree at equal widths
+        weight = self.old.weight.detach()
+        if self.transposed:
+            weight = weight.transpose(0, 1)
+        if self.depthwise:   # one input channel per output channel: rows follow the input
+            return weight if source is None else rows(weight, source)
+        dense = dense_from_groups(weight, getattr(self.old, "groups", 1))
+        if source is not None:
+            dense = rows(dense, source)
+        return groups_from_dense(feed(dense, in_map), self.groups)
 
 
 class Converter:
     """One conversion: walks the graph, keeps each value's layout and channel map, rewrites modules."""
 
     def __init__(self, gm: fx.GraphModule, group: Group, budget: str, head: str, init: str,
-                 input_shape: tuple[int, ...], stop_at: str | None):
+                 input_shape: tuple[int, ...], stop_at: str | None, match: bool = MATCH_DEFAULT,
+                 carry_weights: bool = True):
         self.gm = gm
         self.group = group
         self.budget = budget
         self.head = head
         self.init = init
+        self.carry = carry_weights
         self.layouts: dict[fx.Node, Layout | None] = {}
         self.maps: dict[fx.Node, ChannelMap] = {}
         self.replaced: set[str] = set()
@@ -82,6 +149,23 @@ class Converter:
             pool = self._insert_pool(self._find(stop_at), "orbit_pool")
             self.plain_after = _descendants(pool)
         self.head_layers = set() if stop_at is not None else _head_layers(gm)
+        self.matching = self._matching(match)
+        self.plan.match = self.matching
+        # without matching, the identity assignment is the one in use: one set of maps serves both
+        self.identity_maps: dict[fx.Node, ChannelMap] = {} if self.matching else self.maps
+        self.classes = ChannelClasses(gm) if self.matching else None
+        self.class_maps: dict[int, ChannelMap] = {}
+        self.layers: dict[fx.Node, _Layer] = {}
+
+    def _matching(self, match: bool) -> bool:
+        """Whether channel matching applies; a note says why not when it was asked for."""
+        if not (match and self.carry):
+            return False
+        if self.init == "embed" or self.budget == "fields":
+            self.plan.notes.append("channel matching does not apply to the 'fields' budget (every orbit copies "
+                                   "one original channel); the identity assignment is used")
+            return False
+        return True
 
     # -- the walk --------------------------------------------------------------------------
     def run(self) -> None:
@@ -89,7 +173,7 @@ class Converter:
             if node.op == "placeholder":
                 s = shape(node)
                 self.layouts[node] = Plain(s[1])
-                self.maps[node] = ChannelMap.identity(s[1])
+                self.maps[node] = self.identity_maps[node] = ChannelMap.identity(s[1])
             elif node.op == "get_attr":
                 self.layouts[node] = None
             elif node.op == "output":
@@ -113,14 +197,16 @@ class Converter:
         layout = rule(step)
         self.layouts[node] = layout
         if node not in self.maps:
-            self.maps[node] = self._carried_map(node, layout)
+            self.maps[node] = self._carried_map(node, layout, self.maps)
+        if node not in self.identity_maps:
+            self.identity_maps[node] = self._carried_map(node, layout, self.identity_maps)
 
-    def _carried_map(self, node: fx.Node, layout: Layout | None) -> ChannelMap | None:
-        sources = [self.maps.get(arg) for arg in node.all_input_nodes if self.layouts.get(arg) is not None]
+    def _carried_map(self, node: fx.Node, layout: Layout | None, maps: dict[fx.Node, ChannelMap]) -> ChannelMap | None:
+        sources = [maps.get(arg) for arg in node.all_input_nodes if self.layouts.get(arg) is not None]
         if layout is None or not sources:
             return None
         if node.target is torch.cat:
-            return ChannelMap.concat([self.maps[a] for a in node.args[0]])
+            return ChannelMap.concat([maps[a] for a in node.args[0]])
         if node.op == "call_module" and isinstance(self.gm.get_submodule(node.target), OrbitPool):
             return sources[0].pooled(self.group.order)
         first = self.layouts[node.all_input_nodes[0]]
@@ -136,6 +222,7 @@ class Converter:
                 pool = self._insert_pool(result, "output_orbit_pool")
                 self.layouts[pool] = Plain(layout.orbits)
                 self.maps[pool] = self.maps[result].pooled(self.group.order)
+                self.identity_maps[pool] = self.identity_maps[result].pooled(self.group.order)
                 self.plan.notes.append(f"the output of '{result.name}' is orbit-pooled to make it invariant")
                 result = pool
             spatial = len(shape(result) or ()) > 2
@@ -182,13 +269,19 @@ class Converter:
             return Plain(channels)
         return Orbit(orbits_for(channels, self.group, self.budget))
 
-    def _out_map(self, layout: Layout, channels: int) -> ChannelMap:
+    def _identity_source(self, layout: Layout, channels: int) -> torch.Tensor:
         if isinstance(layout, Plain):
-            return ChannelMap.identity(channels)
-        return ChannelMap.from_source(budget_source(channels, layout.orbits, self.group.order, self.budget), channels)
+            return torch.arange(channels)
+        return budget_source(channels, layout.orbits, self.group.order, self.budget)
+
+    def _map(self, layout: Layout, source: torch.Tensor, channels: int) -> ChannelMap:
+        """The map of a layer output: embedded (slot 0 feeds on) for ``embed`` orbits, else copies share."""
+        if self.init == "embed" and isinstance(layout, Orbit):
+            return ChannelMap.embedded(source, channels, self.group.order)
+        return ChannelMap.from_source(source, channels)
 
     def _record(self, step: Step, old: nn.Module, lin: Layout, lout: Layout, new: nn.Module, notes: list[str],
-                residual: float | None, groups: tuple[int, int] = (1, 1)) -> None:
+                residual: float | None, groups: tuple[int, int] = (1, 1), identity: float | None = None) -> None:
         before = _channels(old)
         after = _channels(new)
         if isinstance(lout, Orbit) and before[1] != after[1] and self.budget == "channels":
@@ -197,62 +290,124 @@ class Converter:
             name=step.node.name, target=str(step.node.target), op=type(old).__name__, layout_in=str(lin),
             layout_out=str(lout), channels_before=before, channels_after=after,
             kernel=tuple(getattr(old, "kernel_size", ())), stride=tuple(getattr(old, "stride", ())),
-            groups=groups, notes=notes, weight_residual=residual))
+            groups=groups, notes=notes, weight_residual=residual,
+            weight_residual_identity=residual if identity is None and not self.matching else identity))
 
     # -- layers -------------------------------------------------------------------------------
     def convert_conv(self, step: Step) -> Layout:
-        node, old = step.node, self.gm.get_submodule(step.node.target)
-        lin = step.layout
-        if not isinstance(lin, (Plain, Orbit)):
-            raise step.refuse("A conv reads a flattened tensor", CONVERT_UP_TO)
-        transposed = isinstance(old, nn.ConvTranspose2d)
-        notes: list[str] = []
-        depthwise = old.groups > 1 and old.groups == old.in_channels == old.out_channels
-        in_map = self.maps[step.node.all_input_nodes[0]]
-        if depthwise:
-            lout, out_map, groups = lin, in_map, lin.size(self.group)
-        else:
-            lout = self._output_layout(node, old.out_channels)
-            out_map = self._out_map(lout, old.out_channels)
-            groups = self._groups(step, old.groups, lin, lout, notes)
-        new = _conv_like(old, lin.size(self.group), lout.size(self.group), groups)
-        weight = old.weight.detach()
-        if transposed:
-            weight = weight.transpose(0, 1)
-        if depthwise:
-            weight = rows(weight, in_map.source)
-        else:
-            weight = groups_from_dense(feed(rows(dense_from_groups(weight, old.groups), out_map.source), in_map), groups)
-        if transposed:
-            weight = weight.transpose(0, 1)
-        tie_conv(new, self.group, lin, lout, where=describe(node))
-        residual = self._load(new, weight, old.bias, out_map)
-        self._replace(node, new)
-        self.maps[node] = out_map
-        self._record(step, old, lin, lout, new, notes, residual, (old.groups, groups))
-        return lout
+        return self._convert_layer(step)
 
     def convert_linear(self, step: Step) -> Layout:
-        node, old = step.node, self.gm.get_submodule(step.node.target)
-        lin = step.layout
-        lout = self._output_layout(node, old.out_features)
-        out_map = self._out_map(lout, old.out_features)
-        new = nn.Linear(lin.size(self.group), lout.size(self.group), bias=old.bias is not None)
-        weight = feed(rows(old.weight.detach(), out_map.source), self.maps[node.all_input_nodes[0]])
-        tie_linear(new, self.group, lin, lout, where=describe(node))
-        residual = self._load(new, weight, old.bias, out_map)
-        self._replace(node, new)
-        self.maps[node] = out_map
-        self._record(step, old, lin, lout, new, [], residual)
-        return lout
+        return self._convert_layer(step)
 
-    def _load(self, new: nn.Module, weight: torch.Tensor, bias: torch.Tensor | None, out_map: ChannelMap) -> float:
-        """Assign the carried-over weight (projected by the tying) and return its weight residual."""
+    def _convert_layer(self, step: Step) -> Layout:
+        node = step.node
+        layer = self._layer(node, step)
+        in_node = node.all_input_nodes[0]
+        if layer.depthwise:   # channels follow the input channels
+            out_map, identity_map = self.maps[in_node], self.identity_maps[in_node]
+        else:
+            channels = _channels(layer.old)[1]
+            identity_map = self._map(layer.lout, self._identity_source(layer.lout, channels), channels)
+            out_map = self._chosen_map(node, layer, identity_map) if self.matching else identity_map
+        residual = identity = None
+        if self.carry:
+            residual = self._load(layer, self.maps[in_node], out_map)
+            if self.matching and self.init != "embed":
+                weight = layer.weight(self.identity_maps[in_node], identity_map.source)
+                identity = tied_residual(layer.new, weight, layer.transposed)
+        self._replace(node, layer.new)
+        self.maps[node], self.identity_maps[node] = out_map, identity_map
+        self._record(step, layer.old, layer.lin, layer.lout, layer.new, layer.notes, residual,
+                     (getattr(layer.old, "groups", 1), layer.groups), identity)
+        return layer.lout
+
+    def _layer(self, node: fx.Node, step: Step | None) -> _Layer:
+        """The new tied module of a conv/linear node, built once (matching may build it before its turn).
+
+        With ``step`` None (built for matching ahead of its turn) errors name the node without a step.
+        """
+        if node in self.layers:
+            return self.layers[node]
+        old = self.gm.get_submodule(node.target)
+        lin = self.layouts[node.all_input_nodes[0]]
+        notes: list[str] = []
+        if isinstance(old, nn.Linear):
+            lout = self._output_layout(node, old.out_features)
+            new = self._new(nn.Linear, lin.size(self.group), lout.size(self.group), bias=old.bias is not None,
+                            **_factory(old.weight))
+            tie_linear(new, self.group, lin, lout, where=describe(node))
+            layer = _Layer(old, new, lin, lout)
+        else:
+            if not isinstance(lin, (Plain, Orbit)):
+                raise (step or Step(node, [lin], self)).refuse("A conv reads a flattened tensor", CONVERT_UP_TO)
+            if is_depthwise(old):
+                lout, groups = lin, lin.size(self.group)
+            else:
+                lout = self._output_layout(node, old.out_channels)
+                groups = self._groups(step or Step(node, [lin], self), old.groups, lin, lout, notes)
+            new = self._new(type(old), lin.size(self.group), lout.size(self.group),
+                            **_conv_geometry(old, groups))
+            tie_conv(new, self.group, lin, lout, where=describe(node))
+            layer = _Layer(old, new, lin, lout, groups, notes)
+        self.layers[node] = layer
+        return layer
+
+    def _new(self, kind: type, *args, **kwargs) -> nn.Module:
+        """A new layer; its parameters are left uninitialised when the original weights overwrite them."""
+        if self.carry:
+            return nn.utils.skip_init(kind, *args, **kwargs)
+        return kind(*args, **kwargs)
+
+    def _chosen_map(self, node: fx.Node, layer: _Layer, identity_map: ChannelMap) -> ChannelMap:
+        """The output map of a channel-choosing layer under matching: its class's, chosen once for the class.
+
+        The class's map is chosen when its first layer is reached, jointly for every layer of the
+        class whose input is already converted; later layers of the class follow it.
+        """
+        if not isinstance(layer.lout, Orbit):
+            return identity_map
+        key = self.classes.key(node)
+        if key in self.class_maps:
+            return self.class_maps[key]
+        blocks = self.classes.blocks(node)
+        chosen = identity_map
+        if blocks is not None:
+            terms = [term for other in self.classes.producers(node) if (term := self._match_term(other, layer.lout))]
+            if terms:
+                result = match_channels(terms, identity_map.source, blocks)
+                layer.notes.extend(result.notes)
+                chosen = self._map(layer.lout, result.source, _channels(layer.old)[1])
+        self.class_maps[key] = chosen
+        return chosen
+
+    def _match_term(self, node: fx.Node, lout: Layout) -> MatchTerm | None:
+        """What matching needs from a layer of the class: None if its input is not converted yet."""
+        in_node = node.all_input_nodes[0]
+        if in_node not in self.maps or not chooses_channels(self.gm.get_submodule(node.target)):
+            return None
+        try:
+            layer = self._layer(node, None)
+        except OrbifyError:   # reported at the layer's own turn
+            return None
+        if layer.lout != lout or not parametrize.is_parametrized(layer.new, "weight"):
+            return None
+        tying = layer.new.parametrizations.weight[0]
+        layer.fed = (self.maps[in_node], layer.weight(self.maps[in_node], None))
+        return MatchTerm(layer.fed[1], tying, layer.transposed)
+
+    def _load(self, layer: _Layer, in_map: ChannelMap, out_map: ChannelMap) -> float | None:
+        """Carry the original weight and bias into ``layer.new``; return the weight residual (None for embed)."""
+        embed = self.init == "embed" and isinstance(layer.lout, Orbit)
+        weight = layer.weight(in_map, out_map.source[::self.group.order] if embed else out_map.source)
         with torch.no_grad():
-            _assign(new, "weight", weight)
-            if bias is not None:
-                _assign(new, "bias", rows(bias.detach(), out_map.source))
-            tied = new.weight
+            load_weight(layer.new, weight, layer.transposed, slot_zero=embed)
+            if layer.old.bias is not None:
+                _assign(layer.new, "bias", rows(layer.old.bias.detach(), out_map.source))
+        if self.init == "embed":
+            return None
+        with torch.no_grad():
+            tied = layer.new.weight.transpose(0, 1) if layer.transposed else layer.new.weight
         norm = weight.norm()
         return float((weight - tied).norm() / norm) if norm > 0 else 0.0
 
@@ -274,8 +429,13 @@ class Converter:
         node, old = step.node, self.gm.get_submodule(step.node.target)
         layout = step.layout
         source = self.maps[node.all_input_nodes[0]].source
-        plain = _copy_norm_rows(old, source)
-        new = OrbitBatchNorm.from_plain(plain, self.group) if isinstance(layout, Orbit) else plain
+        plain = _copy_norm_rows(old, source) if self.carry else _fresh_norm(old, source.numel())
+        if isinstance(layout, Orbit):
+            like = next((t for t in (plain.weight, plain.running_mean) if t is not None), None)
+            new = OrbitBatchNorm.from_plain(plain, self.group)
+            new = new.to(**_factory(like)) if like is not None else new
+        else:
+            new = plain
         self._replace(node, new)
         self._record(step, old, layout, layout, new, [], None)
         return layout
@@ -297,8 +457,8 @@ class Converter:
             new = nn.LayerNorm(channels, old.eps, old.elementwise_affine)
         source = self.maps[node.all_input_nodes[0]].source
         with torch.no_grad():
-            if getattr(old, "weight", None) is not None:
-                new.weight.copy_(rows(old.weight - 1, source) + 1)
+            if self.carry and getattr(old, "weight", None) is not None:
+                new.weight.copy_(rows(old.weight, source, fill=1.0))
                 new.bias.copy_(rows(old.bias, source))
         tie_affine(new, self.group, layout)
         self._replace(node, new)
@@ -313,28 +473,40 @@ def _assign(module: nn.Module, name: str, value: torch.Tensor) -> None:
         getattr(module, name).copy_(value)
 
 
+def _fresh_norm(old: nn.modules.batchnorm._BatchNorm, channels: int) -> nn.modules.batchnorm._BatchNorm:
+    """A freshly initialised batch norm like ``old`` over ``channels`` channels."""
+    like = next((t for t in (old.weight, old.running_mean) if t is not None), None)
+    return type(old)(channels, eps=old.eps, momentum=old.momentum, affine=old.affine,
+                     track_running_stats=old.track_running_stats,
+                     **(_factory(like) if like is not None else {})).train(old.training)
+
+
+def _factory(like: torch.Tensor) -> dict:
+    """Keyword arguments that build new parameters on the device and in the dtype of ``like``."""
+    return {"device": like.device, "dtype": like.dtype}
+
+
 def _copy_norm_rows(old: nn.modules.batchnorm._BatchNorm, source: torch.Tensor) -> nn.modules.batchnorm._BatchNorm:
     """A plain batch norm over the new channels whose statistics and affine copy the source channels."""
-    new = type(old)(source.numel(), eps=old.eps, momentum=old.momentum, affine=old.affine,
-                    track_running_stats=old.track_running_stats)
+    new = _fresh_norm(old, source.numel())
     with torch.no_grad():
         if old.affine:
-            new.weight.copy_(rows(old.weight - 1, source) + 1)
+            new.weight.copy_(rows(old.weight, source, fill=1.0))
             new.bias.copy_(rows(old.bias, source))
         if old.track_running_stats:
             new.running_mean.copy_(rows(old.running_mean, source))
-            new.running_var.copy_(rows(old.running_var - 1, source) + 1)
+            new.running_var.copy_(rows(old.running_var, source, fill=1.0))
             new.num_batches_tracked.copy_(old.num_batches_tracked)
-    return new.train(old.training)
+    return new
 
 
-def _conv_like(old: nn.Module, in_channels: int, out_channels: int, groups: int) -> nn.Module:
-    """A fresh conv of the same type and geometry as ``old`` with new widths and group count."""
+def _conv_geometry(old: nn.Module, groups: int) -> dict:
+    """Keyword arguments for a conv of the same type and geometry as ``old`` with a new group count."""
     kwargs = dict(kernel_size=old.kernel_size, stride=old.stride, padding=old.padding, dilation=old.dilation,
-                  groups=groups, bias=old.bias is not None, padding_mode=old.padding_mode)
+                  groups=groups, bias=old.bias is not None, padding_mode=old.padding_mode, **_factory(old.weight))
     if isinstance(old, nn.ConvTranspose2d):
         kwargs["output_padding"] = old.output_padding
-    return type(old)(in_channels, out_channels, **kwargs)
+    return kwargs
 
 
 def _channels(module: nn.Module) -> tuple[int, int]:
@@ -364,12 +536,9 @@ def _head_layers(gm: fx.GraphModule) -> set[fx.Node]:
             if arg in seen:
                 continue
             seen.add(arg)
-            if arg.op == "call_module" and isinstance(gm.get_submodule(arg.target), _LAYER_TYPES):
-                module = gm.get_submodule(arg.target)
-                depthwise = isinstance(module, nn.Conv2d) and module.groups == module.in_channels == module.out_channels > 1
-                if not depthwise:
-                    heads.add(arg)
-                    continue
+            if arg.op == "call_module" and chooses_channels(gm.get_submodule(arg.target)):
+                heads.add(arg)
+                continue
             stack.append(arg)
     return heads
 
