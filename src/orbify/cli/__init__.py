@@ -13,6 +13,8 @@ from .app import app, main
 
 # Command modules register themselves on `app` when imported.
 from . import sizes  # noqa: E402,F401
+from . import convert  # noqa: E402,F401
+from . import demo  # noqa: E402,F401
 from . import export  # noqa: E402,F401
 from . import check  # noqa: E402,F401
 from . import summary  # noqa: E402,F401

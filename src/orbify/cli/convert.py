@@ -16,9 +16,11 @@ from rich.table import Table
 from torch import nn
 
 from ..check import CheckReport, check_model
-from ..convert import convert
+from ..convert import MATCH_DEFAULT, convert
 from ..errors import OptionError, OutputError
-from ..plan import ConversionPlan
+from ..groups import parse_group
+from ..plan import BUDGETS, HEADS, INITS, ConversionPlan, check_choice
+from ..recipes import find_recipe_for, load_recipe, merge_options
 from ..report import error, ratio, si
 from ..saving import is_converted_file, save
 from ..sizes import SizeChecker
@@ -112,14 +114,19 @@ QUICK_CHECK_IMAGES = 2
 def convert_command(
     source: str = typer.Argument(..., help=SOURCE_HELP),
     out: Path = typer.Option(..., "--out", "-o", help="The converted-model file to write (.orb)."),
-    group: str = typer.Option("d4", "--group", "-g", help=GROUP_HELP),
-    budget: str = typer.Option("channels", "--budget", help=BUDGET_HELP),
-    head: str = typer.Option("invariant", "--head", help=HEAD_HELP),
-    init: str = typer.Option("orbit-average", "--init", help=INIT_HELP),
+    group: Optional[str] = typer.Option(None, "--group", "-g", help=GROUP_HELP + " Default: the recipe's, else d4."),
+    budget: Optional[str] = typer.Option(None, "--budget", help=BUDGET_HELP + " Default: the recipe's, else channels."),
+    head: Optional[str] = typer.Option(None, "--head", help=HEAD_HELP + " Default: the recipe's, else invariant."),
+    init: Optional[str] = typer.Option(None, "--init", help=INIT_HELP + " Default: the recipe's, else orbit-average."),
+    match: Optional[bool] = typer.Option(None, "--match/--no-match", help="Choose which original channels share an "
+                                         "orbit so that the projection loses the least (default: the recipe's, "
+                                         "else on)."),
     input_size: Optional[int] = typer.Option(None, "--input-size", min=1, help="Height and width of the input. "
                                              "Default: the recipe's size, else the safe size nearest the "
                                              "architecture's usual one (224 for torchvision backbones, 33 for "
                                              "'example')."),
+    recipe_name: Optional[str] = typer.Option(None, "--recipe", help="A shipped recipe's name (orbify recipes "
+                                              "lists them) or a recipe .toml file; options given here override it."),
     channels: Optional[int] = typer.Option(None, "--channels", min=1, help="Input channels (default: those of the "
                                            "first conv)."),
     stop_at: Optional[str] = typer.Option(None, "--stop-at", help="Convert only up to this graph node or module "
@@ -132,35 +139,75 @@ def convert_command(
 
     Prints the chosen input size and why, then a table: parameters and MACs before and after,
     the worst weight residual (how far the projection moved a layer's weights) and the output's
-    invariance error on random images. The converted model drifts from the original until it is
-    tuned (orbify tune).
+    invariance error on two random images. The converted model drifts from the original until it
+    is tuned (orbify tune); orbify check measures it in full.
 
     Examples:
 
       orbify convert example -o example-d4.orb
 
-      orbify convert torchvision:resnet18 --weights resnet18.pt --group c4 -o resnet18-c4.orb
+      orbify convert torchvision:resnet18 --weights resnet18.pt --recipe resnet -o resnet18-d4.orb
 
-      orbify convert mypackage.models:build_net --weights net.pt --input-size 129 --budget params -o net-d4.orb
+      orbify convert torchvision:resnet18 --weights resnet18.pt --group c4 --input-size 225 -o resnet18-c4.orb
+
+      orbify convert mypackage.models:build_net --weights net.pt --budget params --input-size 129 -o net-d4.orb
     """
     refuse_output(out, force, inputs=[Path(source), weights])
-    if is_converted_file(Path(source)):
+    if Path(source).is_file() and is_converted_file(Path(source)):
         raise OptionError(f"{source!r} is already a converted model",
                           fix="check, tune or export it (orbify check/tune/export), or convert its plain original")
+    recipe = load_recipe(recipe_name) if recipe_name is not None else None
+    given = {"group": group, "budget": budget, "head": head, "init": init, "match": match, "stop_at": stop_at}
+    if recipe is not None:
+        options = merge_options(recipe, given)
+        recipe_size = options.pop("input_size")
+    else:
+        options = {**DEFAULT_OPTIONS, **{key: value for key, value in given.items() if value is not None}}
+    check_options(options)
     loaded = read_model(source, weights, trust_pickle)
     original = loaded.module
     channels = channels or input_channels(original)
-    choice = choose_input_size(original, source, requested=input_size, channels=channels)
+    if recipe is not None:
+        if input_size is None:
+            recipe.check_input_size(original, channels=channels)
+        choice = choose_input_size(original, source, requested=input_size, recipe_size=recipe_size,
+                                   recipe_name=recipe.name, channels=channels)
+    else:
+        suggest_recipe(loaded.reference or source)
+        choice = choose_input_size(original, source, requested=input_size, channels=channels)
     console.print(f"input size {choice.size}: {choice.reason}", highlight=False)
     example = torch.zeros(1, channels, choice.size, choice.size)
-    converted, plan = convert(original, group, budget, head, example, init=init, stop_at=stop_at)
+    converted, plan = convert(original, example_input=example, **options)
     images = torch.randn(QUICK_CHECK_IMAGES, channels, choice.size, choice.size,
                          generator=torch.Generator().manual_seed(0))
     report = check_model(converted, original, plan, images)
-    path = save(converted, plan, out, reference=loaded.reference, check=report.to_dict(), force=force)
+    path = save(converted, plan, out, reference=loaded.reference, recipe=recipe.name if recipe else None,
+                check=report.to_dict(), force=force)
     console.print(conversion_table(report, plan))
-    console.print(f"wrote {path} ({path.stat().st_size:,} bytes). Next: orbify check {path} --original {source}; "
-                  f"orbify tune {path} ...", highlight=False)
+    console.print(f"wrote {path} ({path.stat().st_size:,} bytes). Next: orbify tune {path} --data IMAGES -o TUNED.orb",
+                  highlight=False)
+
+
+DEFAULT_OPTIONS = {"group": "d4", "budget": "channels", "head": "invariant", "init": "orbit-average",
+                   "match": MATCH_DEFAULT, "stop_at": None}
+"""The conversion options used where neither the command line nor a recipe sets them."""
+
+
+def check_options(options: dict) -> None:
+    """Refuse a bad group, budget, head or init before any model is read."""
+    parse_group(options["group"])
+    check_choice("budget", options["budget"], BUDGETS)
+    check_choice("head", options["head"], HEADS)
+    check_choice("init", options["init"], INITS)
+
+
+def suggest_recipe(architecture: str) -> None:
+    """Print the shipped recipe made for ``architecture``, if there is one."""
+    recipe = find_recipe_for(architecture)
+    if recipe is not None:
+        console.print(f"tip: the shipped recipe {recipe.name!r} is made for this architecture "
+                      f"({recipe.group}, input size {recipe.input_size}); add --recipe {recipe.name} to use it",
+                      highlight=False)
 
 
 def refuse_output(out: Path, force: bool, inputs: list[Path | None]) -> None:
@@ -177,8 +224,8 @@ def refuse_output(out: Path, force: bool, inputs: list[Path | None]) -> None:
 def conversion_table(report: CheckReport, plan: ConversionPlan) -> Table:
     """Parameters, MACs, worst weight residual and output invariance error, before and after."""
     table = Table("", "original", f"converted ({plan.group}, {plan.budget})", title="conversion")
-    table.add_row("parameters", f"{report.params_before:,}", f"{report.params_after:,} ({ratio(report.param_ratio)})")
-    table.add_row("MACs per image", si(report.macs_before), f"{si(report.macs_after)} ({ratio(report.mac_ratio)})")
+    table.add_row("parameters", f"{report.params_before:,}", f"{report.params_after:,}  {ratio(report.param_ratio)}")
+    table.add_row("MACs per image", si(report.macs_before), f"{si(report.macs_after)}  {ratio(report.mac_ratio)}")
     residuals = [(layer.weight_residual, layer.name) for layer in plan.layers if layer.weight_residual is not None]
     if residuals:
         worst, name = max(residuals)

@@ -1,0 +1,227 @@
+"""The command line a newcomer meets: convert, sizes and demo, their help, input-size choice and error paths.
+
+Every error path must exit non-zero with one paragraph and no traceback, write nothing and leave the
+input files byte-for-byte unchanged (hashed before and after with orbify.fileio.sha256_file).
+"""
+
+import numpy as np
+import pytest
+import torch
+import torchvision
+from torch import nn
+from typer.testing import CliRunner
+
+import orbify
+from orbify.cli import app
+from orbify.cli.convert import choose_input_size
+from orbify.example import load_example_model, make_tiles
+from orbify.fileio import sha256_file
+
+runner = CliRunner()
+
+
+def run(*args):
+    result = runner.invoke(app, [str(a) for a in args])
+    return result.exit_code, result.output
+
+
+def assert_one_paragraph_error(code, output, *needles):
+    assert code not in (0, None), output
+    assert "Traceback" not in output, output
+    text = output.strip()
+    assert text.startswith("error:"), output
+    assert "\n\n" not in text, output          # one paragraph
+    flat = " ".join(text.split())
+    for needle in needles:
+        assert needle in flat, (needle, output)
+
+
+@pytest.fixture
+def example_weights(tmp_path):
+    """The shipped example weights as a plain state-dict file, read by the factory source."""
+    path = tmp_path / "example.pt"
+    torch.save(load_example_model().state_dict(), path)
+    return path
+
+
+# -- convert: the happy path -------------------------------------------------------------------------------------
+def test_convert_example_chooses_the_tile_size_and_writes_an_invariant_model(tmp_path):
+    out = tmp_path / "example-d4.orb"
+    code, output = run("convert", "example", "-o", out)
+    assert code == 0, output
+    flat = " ".join(output.split())
+    assert "input size 33: the bundled example's tile size" in flat
+    for row in ("parameters", "MACs per image", "worst weight residual", "output invariance error"):
+        assert row in flat
+    assert "61,078" in flat and "7,640" in flat     # d4, channels budget: an eighth of the parameters (÷8 up to biases)
+    assert "tip: the shipped recipe 'example'" in flat
+    loaded = orbify.load(out)
+    assert loaded.plan.group == "d4" and tuple(loaded.plan.input_shape[-2:]) == (33, 33)
+    # Reference for the group action: numpy.rot90 and numpy.flip on the pixel axes (check-values.md).
+    images, _ = make_tiles(4, split="any", seed=3)
+    with torch.no_grad():
+        logits = loaded.module(images)
+        for turns in range(4):
+            for mirror in (False, True):
+                moved = images.numpy()[..., ::-1] if mirror else images.numpy()
+                moved = torch.from_numpy(np.ascontiguousarray(np.rot90(moved, turns, axes=(-2, -1))))
+                error = float((loaded.module(moved) - logits).norm() / logits.norm())
+                assert error <= 1e-5, (turns, mirror, error)
+
+
+def test_convert_with_a_recipe_and_an_override(tmp_path):
+    out = tmp_path / "example-c4.orb"
+    code, output = run("convert", "example", "--recipe", "example", "--group", "c4", "-o", out)
+    assert code == 0, output
+    flat = " ".join(output.split())
+    assert "input size 33: the size of recipe 'example', safe" in flat
+    assert "tip:" not in flat
+    loaded = orbify.load(out)
+    assert loaded.plan.group == "c4" and loaded.metadata["recipe"] == "example"
+
+
+def test_convert_warns_about_an_unsafe_requested_size_and_names_safe_ones(tmp_path):
+    # 32 px: the first 3x3 stride-2 padding-1 conv sees (32 + 2 - 3) = 31, odd, so its grid is not symmetric.
+    code, output = run("convert", "example", "--input-size", "32", "-o", tmp_path / "x.orb")
+    assert code == 0, output
+    flat = " ".join(output.split())
+    assert "input size 32: given with --input-size, NOT safe" in flat
+    assert "33" in flat.split("safe sizes nearby:")[1]
+
+
+def test_convert_reads_weights_for_a_factory_source_and_leaves_them_unchanged(tmp_path, example_weights):
+    before = sha256_file(example_weights)
+    out = tmp_path / "net.orb"
+    code, output = run("convert", "orbify.example.model:build_example_cnn", "--weights", example_weights,
+                       "--budget", "params", "--input-size", "33", "-o", out)
+    assert code == 0, output
+    assert sha256_file(example_weights) == before
+    assert orbify.load(out).plan.budget == "params"
+
+
+# -- input sizes -------------------------------------------------------------------------------------------------
+def strided_grids_symmetric(model: nn.Module, size: int) -> bool:
+    """Independent reference: run torchvision's own model definition with forward hooks and apply the
+    common-practice rule (H + 2*padding - dilation*(kernel-1) - 1) % stride == 0 to every strided conv/pool."""
+    ok = []
+
+    def hook(module, inputs, _):
+        k, s, p, d = (module.kernel_size, module.stride, module.padding, getattr(module, "dilation", 1))
+        k, s, p, d = ((v if isinstance(v, tuple) else (v, v)) for v in (k, s, p, d))
+        h = inputs[0].shape[-1]
+        if s[0] > 1:
+            ok.append((h + 2 * p[0] - d[0] * (k[0] - 1) - 1) % s[0] == 0)
+
+    handles = [m.register_forward_hook(hook) for m in model.modules() if isinstance(m, (nn.Conv2d, nn.MaxPool2d))]
+    with torch.no_grad():
+        model(torch.zeros(1, 3, size, size))
+    for handle in handles:
+        handle.remove()
+    return all(ok)
+
+
+def test_size_choice_for_a_torchvision_backbone_is_the_nearest_safe_size_to_224():
+    model = torchvision.models.resnet18(weights=None).eval()
+    choice = choose_input_size(model, "torchvision:resnet18")
+    assert not strided_grids_symmetric(model, 224)
+    assert strided_grids_symmetric(model, choice.size)
+    assert all(not strided_grids_symmetric(model, s) for s in range(224 - abs(choice.size - 224) + 1, choice.size))
+    assert choice.size == 225
+    assert "224" in choice.reason and "conv1" in choice.reason
+
+
+def test_size_choice_for_a_model_of_unknown_origin_starts_from_224():
+    # The example CNN named by its factory: its first stride-2 3x3 conv (padding 1) sees 224 + 2 - 3 = 223, odd;
+    # at 225 the three stride-2 convs see 225, 113 and 57, and 224, 112 and 56 are even.
+    model = load_example_model()
+    choice = choose_input_size(model, "orbify.example.model:build_example_cnn")
+    assert choice.size == 225 and strided_grids_symmetric(model, 225) and not strided_grids_symmetric(model, 224)
+    assert "the safe size nearest 224" in choice.reason and "unknown origin" in choice.reason
+
+
+def test_sizes_command_lists_safe_sizes():
+    code, output = run("sizes", "torchvision:resnet18", "--near", "224", "--count", "2")
+    assert code == 0, output
+    assert "224 is not safe" in output and "225" in output
+
+
+# -- help --------------------------------------------------------------------------------------------------------
+@pytest.mark.parametrize("command", ["convert", "demo"])
+def test_help_has_examples(command):
+    code, output = run(command, "--help")
+    assert code == 0, output
+    assert "Examples" in output and f"orbify {command}" in output
+
+
+def test_convert_help_lists_every_option():
+    output = " ".join(run("convert", "--help")[1].split())
+    for option in ("--group", "--budget", "--head", "--init", "--input-size", "--recipe", "--weights", "--stop-at",
+                   "--trust-pickle", "--out", "--force"):
+        assert option in output, option
+
+
+# -- error paths -------------------------------------------------------------------------------------------------
+@pytest.mark.parametrize("args, needles", [
+    (["example", "--group", "q7"], ["Unknown group 'q7'", "dN"]),
+    (["example", "--budget", "wide"], ["Unknown budget 'wide'", "channels, params, fields"]),
+    (["torchvision:resnet_nine"], ["torchvision has no model named 'resnet_nine'"]),
+    (["no_such_package.models:build"], ["Cannot import the module 'no_such_package.models'"]),
+    (["missing-model.pt"], ["'missing-model.pt' does not exist"]),
+    (["example", "--recipe", "no-such-recipe"], ["No recipe named 'no-such-recipe'"]),
+])
+def test_bad_input_is_one_paragraph_and_writes_nothing(tmp_path, args, needles):
+    out = tmp_path / "x.orb"
+    code, output = run("convert", *args, "-o", out)
+    assert_one_paragraph_error(code, output, *needles)
+    assert not out.exists()
+
+
+def test_missing_weights_file(tmp_path):
+    code, output = run("convert", "orbify.example.model:build_example_cnn", "--weights", tmp_path / "nope.pt",
+                       "-o", tmp_path / "x.orb")
+    assert_one_paragraph_error(code, output, "nope.pt", "does not exist")
+
+
+def test_existing_output_needs_force_and_inputs_are_never_overwritten(tmp_path, example_weights):
+    out = tmp_path / "x.orb"
+    out.write_bytes(b"an earlier result")
+    kept, weights_before = sha256_file(out), sha256_file(example_weights)
+    code, output = run("convert", "example", "-o", out)
+    assert_one_paragraph_error(code, output, "already exists", "--force")
+    assert sha256_file(out) == kept
+    # even with --force, the weights file given as input is not replaced by the output
+    code, output = run("convert", "orbify.example.model:build_example_cnn", "--weights", example_weights,
+                       "-o", example_weights, "--force")
+    assert_one_paragraph_error(code, output, "is an input of this command")
+    assert sha256_file(example_weights) == weights_before
+
+
+def test_a_converted_file_is_not_converted_again(tmp_path):
+    first = tmp_path / "first.orb"
+    assert run("convert", "example", "-o", first)[0] == 0
+    before = sha256_file(first)
+    code, output = run("convert", first, "-o", tmp_path / "second.orb")
+    assert_one_paragraph_error(code, output, "already a converted model")
+    assert sha256_file(first) == before and not (tmp_path / "second.orb").exists()
+
+
+def test_debug_shows_the_traceback(tmp_path):
+    code, output = run("--debug", "convert", "example", "--group", "q7", "-o", tmp_path / "x.orb")
+    assert code not in (0, None)
+    assert "Traceback" in output and "Unknown group 'q7'" in output
+
+
+def test_demo_refuses_to_overwrite_its_files_without_force(tmp_path):
+    (tmp_path / "results.md").write_text("earlier")
+    before = sha256_file(tmp_path / "results.md")
+    code, output = run("demo", "--out", tmp_path)
+    assert_one_paragraph_error(code, output, "already holds demo files", "--force")
+    assert sha256_file(tmp_path / "results.md") == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["results.md"]
+
+
+def test_demo_refuses_a_file_as_its_folder(tmp_path):
+    target = tmp_path / "a-file"
+    target.write_text("x")
+    code, output = run("demo", "--out", target)
+    assert_one_paragraph_error(code, output, "is a file")
