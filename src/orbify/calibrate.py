@@ -171,7 +171,8 @@ class _Calibration:
         self.hidden_slots = self.all_slots if transformed_copies else [0]
         self.layers = [node for node in converted.graph.nodes
                        if node.op == "call_module" and isinstance(converted.get_submodule(node.target), LAYER_TYPES)]
-        self.choice = ChannelChoice(converted, self.view_graph, self.layers, self._orbits, selection, batches)
+        self.choice = ChannelChoice(converted, self.view_graph, self.layers, self._orbits, selection, batches,
+                                    self.group, self.all_slots)
         self.maps = self._maps()
         self.run = PairedRun(converted, self.view_graph, batches, self.group, cache_bytes)
 
@@ -315,7 +316,8 @@ class _Calibration:
         if norm is not None and norm.track_running_stats:
             self._set_norm(norm, solution, folded)
         self.report.layers.append(LayerCalibration(node.name, str(node.target), LEAST_SQUARES, solution.base.shape[0],
-                                                   solution.base.shape[1], len(system.slots), solution.error))
+                                                   solution.base.shape[1], len(system.slots),
+                                                   system.targets.tolist(), solution.error))
 
     def _set_norm(self, norm: nn.Module, solution: Solution, folded: torch.Tensor | None) -> None:
         """Move the constant of the fit into the running mean and, with ``refit_norms``, match the output's moments.
@@ -358,7 +360,7 @@ class _Calibration:
                 module.bias.copy_(bias)
         features = weight[0].numel()
         self.report.layers.append(LayerCalibration(node.name, str(node.target), ORBIT_AVERAGE, weight.shape[0],
-                                                   features, 0, None, why))
+                                                   features, 0, out_source.tolist(), None, why))
 
     def _agreement(self) -> float | None:
         """Top-1 agreement of the calibrated model with the original's output averaged over the group."""

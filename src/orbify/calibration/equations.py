@@ -96,6 +96,7 @@ class LayerEquations:
         self.gram = torch.zeros(*shape, self.features, dtype=torch.float64)
         self.sums = torch.zeros(shape, dtype=torch.float64)
         self.count = 0
+        self.dtype = torch.float32
         self.cross = torch.zeros(len(self.slots), rows, self.features, dtype=torch.float64)
         self.target_sums = torch.zeros(len(self.slots), rows, dtype=torch.float64)
         self.target_squares = torch.zeros(len(self.slots), rows, dtype=torch.float64)
@@ -150,13 +151,14 @@ class LayerEquations:
 
     def add(self, inputs: torch.Tensor, outputs: dict[int, torch.Tensor]) -> None:
         """Accumulate one batch: the converted input, and per slot the original's aligned output (B, C, ...)."""
-        u = self.unfold(inputs.float())
+        self.dtype = inputs.dtype
+        u = self.unfold(inputs)
         batch, _, _, positions = u.shape
         self.gram += torch.einsum("bgfl,bghl->gfh", u, u).double()
         self.sums += u.sum((0, 3)).double()
         self.count += batch * positions
         for i, slot in enumerate(self.slots):
-            target = outputs[slot].float().reshape(batch, outputs[slot].shape[1], -1)[:, self.targets]
+            target = outputs[slot].to(u.dtype).reshape(batch, outputs[slot].shape[1], -1)[:, self.targets]
             if target.shape[-1] != positions:
                 raise NotRefittable(f"the original's output has {target.shape[-1]} positions, the refit {positions}")
             self.cross[i] += self._cross(u, target, self.row_groups[i]).double()
@@ -231,11 +233,11 @@ class LayerEquations:
             g, s = self.gram[group], self.sums[group]
             if isinstance(self.actions, torch.Tensor):
                 g, s = self.actions.T @ g @ self.actions, s @ self.actions
-            elif self.actions is not None:
+            elif self.actions is not None:   # permuted in the model's precision: float32 halves the memory traffic
                 index = self.actions[view]
-                g, s = g[index][:, index], s[index]
+                g, s = g.to(self.dtype)[index[:, None], index[None, :]], s[index]
             gram, sums = gram + g, sums + s
-        return gram, sums
+        return gram.double(), sums
 
 
 def _ridge_solve(gram: torch.Tensor, cross: torch.Tensor, ridge: float, penalised: int) -> torch.Tensor:

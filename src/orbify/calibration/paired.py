@@ -103,6 +103,7 @@ class PairedRun:
         self.cache_bytes = cache_bytes
         self.frontiers: dict[tuple[int, str, int], _Frontier] = {}
         self.kept_bytes: dict[tuple[int, str, int], int] = {}
+        self.started: set[tuple[int, str, int]] = set()
         self.recomputed = 0
 
     def output_name(self, model: str) -> str | None:
@@ -124,12 +125,14 @@ class PairedRun:
         """
         program = self.programs[model]
         key = (batch, model, view)
-        frontier = self.frontiers.pop(key, None) or _Frontier()
+        frontier = self.frontiers.pop(key, None)
         self.kept_bytes.pop(key, None)
         wanted = set(names)
-        if any(program.position[n] <= frontier.position and n not in frontier.values for n in wanted):
-            frontier = _Frontier()   # a wanted value was already dropped: start again from the images
-            self.recomputed += 1
+        if frontier is None or any(program.position[n] <= frontier.position and n not in frontier.values
+                                   for n in wanted):
+            self.recomputed += key in self.started   # not kept, or a wanted value dropped: start from the images
+            frontier = _Frontier()
+        self.started.add(key)
         found = {n: frontier.values[n] for n in wanted if n in frontier.values}
         end = max(program.position[n] for n in wanted)
         interpreter = program.interpreter

@@ -15,7 +15,8 @@ class LayerCalibration:
     """One conv or linear layer.
 
     ``method``: "least squares" (refitted) or "orbit average" (the fallback, ``note`` says why).
-    ``rows``: fitted base rows (orbits for orbit outputs, channels for plain ones); ``features``:
+    ``rows``: fitted base rows (orbits for orbit outputs, channels for plain ones); ``channels``:
+    the original output channel each row reproduces (slot 0 of an orbit); ``features``:
     base features per row; ``views``: copies of each image fitted. ``error``: the share of the
     targets' variance the refit leaves unexplained on the calibration images (0 = exact, 1 = no
     better than a constant).
@@ -27,6 +28,7 @@ class LayerCalibration:
     rows: int
     features: int
     views: int
+    channels: list[int] = field(default_factory=list)
     error: float | None = None
     note: str | None = None
 

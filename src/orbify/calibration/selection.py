@@ -9,10 +9,9 @@ from a score per original channel:
 * ``importance``: the gain of the channel in every layer that writes it, the norm of its filter
   times the scale of the batch norm that follows (|γ|/√(var + ε)), summed over the writers,
   each normalised to mean 1;
-* ``reconstruction``: the share of the next layers' outputs the channel carries, measured on the
-  calibration images: for every layer that reads the class, Σ_o ‖W[o, c] ∗ x_c‖² — the squared
-  error its output would suffer without channel c — from a per-channel Gram matrix of its
-  input patches (one pass of the original); classes no layer reads fall back to ``importance``.
+* ``reconstruction``: the channels whose orbits best explain what the next layers read, on the
+  calibration images and their copies, chosen greedily (:mod:`orbify.calibration.span`); classes
+  no layer reads fall back to ``importance``.
 
 Grouped layers read whole blocks of channels: a class kept in blocks keeps the same number of
 channels in every block when it can. Kept channels are returned in increasing order.
@@ -20,15 +19,16 @@ channels in every block when it can. Kept channels are returned in increasing or
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+import math
 
 import torch
-import torch.nn.functional as F
 from torch import fx, nn
 
 from ..channels import dense_from_groups
 from ..graph import shape
+from ..groups import Group
 from ..transfer import ChannelClasses, chooses_channels
+from .span import OrbitCovariance, SpanRequest, greedy_orbits
 
 SELECTIONS = ("importance", "reconstruction")
 LAYER_TYPES = (nn.Conv2d, nn.ConvTranspose2d, nn.Linear)
@@ -63,56 +63,41 @@ def importance(node: fx.Node, original: fx.GraphModule) -> torch.Tensor:
     return gain / gain.mean().clamp_min(1e-30)
 
 
-class ReconstructionScores:
-    """Per-channel energy a layer's output draws from each input channel, accumulated over batches.
+def span_statistics(original: fx.GraphModule, requests: dict[int, SpanRequest], batches: list[torch.Tensor],
+                    group: Group, slots: list[int]) -> dict[int, tuple[torch.Tensor, torch.Tensor]]:
+    """The covariance of every requested class's orbit features over the calibration images (block row, slot table).
 
-    ``energy[c] = Σ_o Σ_positions (W[o, c] · patch_c)²``, from per-channel Gram matrices of the
-    input patches (conv: kernel window; linear on a flattened map: the channel's positions).
+    The original runs on every copy s⁻¹·x of each batch; the inputs of the classes' readers are
+    moved back by s (positions become samples) and stacked as the slots of the features.
     """
+    covariances = {key: OrbitCovariance(request.channels, group, slots) for key, request in requests.items()}
+    captured: dict[int, list[torch.Tensor]] = {key: [] for key in requests}
+    running = {"slot": 0}
 
-    def __init__(self, module: nn.Module, channels: int):
-        self.module = module
-        self.channels = channels
-        weight = out_first_weight(module).double()
-        self.weight = weight.reshape(weight.shape[0], channels, -1)   # (out, channels, window)
-        window = self.weight.shape[2]
-        self.gram = torch.zeros(channels, window, window, dtype=torch.float64)
+    def capture(key: int, value: torch.Tensor) -> None:
+        channels, slot = requests[key].channels, running["slot"]
+        if value.dim() == 2 and value.shape[1] != channels:   # a flattened square map
+            side = math.isqrt(value.shape[1] // channels)
+            value = value.reshape(value.shape[0], channels, side, side)
+        if value.dim() == 4:
+            value = group.act_grid(slot, value) if slot else value
+            value = value.permute(0, 2, 3, 1).reshape(-1, channels)
+        captured[key].append(value.detach())
 
-    def add(self, inputs: torch.Tensor) -> None:
-        module = self.module
-        if isinstance(module, nn.Conv2d):
-            mode = "constant" if module.padding_mode == "zeros" else module.padding_mode
-            padded = F.pad(inputs, module._reversed_padding_repeated_twice, mode=mode)
-            patches = F.unfold(padded, module.kernel_size, dilation=module.dilation, stride=module.stride)
-        else:
-            patches = inputs.reshape(inputs.shape[0], -1, 1)
-        patches = patches.reshape(inputs.shape[0], self.channels, self.weight.shape[2], -1)
-        self.gram += torch.einsum("bcil,bcjl->cij", patches, patches).double()
-
-    def energy(self) -> torch.Tensor:
-        return torch.einsum("oci,ocj,cij->c", self.weight, self.weight, self.gram)
-
-
-def reconstruction_energy(original: fx.GraphModule, readers: dict[int, list[fx.Node]],
-                          batches: Iterable[torch.Tensor]) -> dict[int, torch.Tensor]:
-    """Energy per original channel of every class, summed over the layers that read it (one pass of the original)."""
-    scores: dict[str, ReconstructionScores] = {}
-    hooks = []
-    for nodes in readers.values():
-        for node in nodes:
-            module = original.get_submodule(node.target)
-            if isinstance(module, (nn.Conv2d, nn.Linear)) and node.target not in scores:
-                score = scores[node.target] = ReconstructionScores(module, shape(node.args[0])[1])
-                hooks.append(module.register_forward_pre_hook(lambda _, args, score=score: score.add(args[0])))
+    hooks = [original.get_submodule(request.reader).register_forward_pre_hook(
+        lambda _, args, key=key: capture(key, args[0])) for key, request in requests.items()]
     try:
-        with torch.no_grad():
-            for batch in batches:
-                original(batch)
+        for b, batch in enumerate(batches):
+            for slot in slots:
+                running["slot"] = slot
+                original(batch if slot == 0 else group.act_grid(group.inverse(slot), batch))
+            for key, values in captured.items():
+                covariances[key].add(torch.stack(values, 2), seed=b)
+                values.clear()
     finally:
         for hook in hooks:
             hook.remove()
-    return {key: sum(scores[n.target].energy() for n in nodes if n.target in scores)
-            for key, nodes in readers.items()}
+    return {key: covariances[key].covariance(request.slot_means) for key, request in requests.items()}
 
 
 def top_channels(score: torch.Tensor, count: int, blocks: int) -> tuple[torch.Tensor, str | None]:
@@ -132,12 +117,13 @@ def top_channels(score: torch.Tensor, count: int, blocks: int) -> tuple[torch.Te
 class ChannelChoice:
     """The kept channels of every channel class with orbit outputs in a converted model.
 
-    ``orbits_of(node)`` gives, for a channel-choosing layer node, the number of output orbits
-    (None for plain outputs). ``keep(node)`` the kept original channels of its class.
+    ``orbits_of(node)`` gives the number of output orbits of a layer node (None for plain outputs);
+    ``keep(node)`` the kept original channels of the class a node belongs to. ``slots`` are the
+    group elements whose copies of the images the ``reconstruction`` choice sees ([0]: the images only).
     """
 
-    def __init__(self, converted: fx.GraphModule, original: fx.GraphModule, layers: list[fx.Node],
-                 orbits_of, method: str, batches: list[torch.Tensor]):
+    def __init__(self, converted: fx.GraphModule, original: fx.GraphModule, layers: list[fx.Node], orbits_of,
+                 method: str, batches: list[torch.Tensor], group: Group, slots: list[int]):
         self.classes = ChannelClasses(converted)
         self.kept: dict[int, torch.Tensor] = {}
         self.notes: dict[int, str] = {}
@@ -153,12 +139,20 @@ class ChannelChoice:
             key = self.classes.key(node.args[0])
             if key in readers:
                 readers[key].append(node)
-        energy = reconstruction_energy(original, readers, batches) if method == "reconstruction" else {}
+        requests = {}
+        if method == "reconstruction":
+            for key, nodes in readers.items():
+                if nodes:
+                    channels = shape(writers[key][0])[1]
+                    weights = sum(_reading(original.get_submodule(n.target), channels) for n in nodes)
+                    requests[key] = SpanRequest(str(nodes[0].target), channels, weights, orbits_of(nodes[0]) is None)
+        covariances = span_statistics(original, requests, batches, group, slots) if requests else {}
         for key, nodes in writers.items():
-            score = energy.get(key)
-            if not isinstance(score, torch.Tensor) or not bool(score.sum() > 0):
-                score = sum(importance(node, original) for node in nodes)
             blocks = self.classes.blocks(nodes[0]) or 1
+            if key in covariances:
+                self.kept[key] = greedy_orbits(*covariances[key], requests[key].weights, count[key], blocks)
+                continue
+            score = sum(importance(node, original) for node in nodes)
             self.kept[key], note = top_channels(score, count[key], blocks)
             if note:
                 self.notes[key] = note
@@ -166,6 +160,8 @@ class ChannelChoice:
     def keep(self, node: fx.Node) -> torch.Tensor:
         return self.kept[self.classes.key(node)]
 
-    def note(self, node: fx.Node) -> str | None:
-        return self.notes.get(self.classes.key(node))
 
+def _reading(module: nn.Module, channels: int) -> torch.Tensor:
+    """How strongly a layer reads each of its ``channels`` input channels: Σ_o ‖W[o, c]‖²."""
+    weight = out_first_weight(module).double()
+    return weight.reshape(weight.shape[0], channels, -1).square().sum((0, 2))
