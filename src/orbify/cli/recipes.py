@@ -10,7 +10,6 @@ from ..recipes import list_recipes, load_recipe, shipped_folder
 from .app import app, console
 
 recipes_app = typer.Typer(
-    help="Tested conversion settings for known architectures. Without a subcommand: list them.",
     invoke_without_command=True,
     no_args_is_help=False,
     rich_markup_mode="rich",
@@ -20,13 +19,17 @@ app.add_typer(recipes_app, name="recipes")
 
 @recipes_app.callback()
 def recipes(ctx: typer.Context) -> None:
-    """List the shipped recipes: name, architectures, group, budget and input size.
+    """List the recipes: tested conversion settings for known architectures.
 
-    Examples: orbify recipes · orbify recipes show resnet · orbify convert torchvision:resnet50 --recipe resnet -o r50.orb
+    Without a subcommand, shows each shipped recipe's name, architectures, group, budget and input size.
+
+    Examples: orbify recipes · orbify recipes show resnet ·
+    orbify convert torchvision:resnet50 --weights r50.pt --recipe resnet -o r50.orb
     """
     if ctx.invoked_subcommand is not None:
         return
     table = Table("name", "architectures", "group", "budget", "input size", title=f"recipes in {shipped_folder()}")
+    table.columns[1].overflow = "fold"
     for recipe in list_recipes():
         table.add_row(recipe.name, ", ".join(recipe.architectures), recipe.group, recipe.budget,
                       str(recipe.input_size))
@@ -42,4 +45,4 @@ def show(name: str = typer.Argument(..., help="A shipped recipe's name, or the p
     """
     recipe = load_recipe(name)
     console.print(f"[bold]{recipe.name}[/]: {recipe.description} [dim]({recipe.path})[/]")
-    console.print(Syntax(recipe.text, "toml", theme="ansi_dark", background_color="default"))
+    console.print(Syntax(recipe.text, "toml", theme="ansi_dark", background_color="default", word_wrap=True))

@@ -113,8 +113,8 @@ SECTIONS: dict[str, dict[str, Key]] = {
     },
     "convert": {
         "group": Key(str, "cN or dN, e.g. \"c4\", \"d4\"", check=_group),
-        "input_size": Key(int, "a square input size in pixels at which every strided op is exact (≥ 8); "
-                               "`orbify sizes` lists them", check=_at_least(8)),
+        "input_size": Key(int, "a safe square input size in pixels, ≥ 8 (every strided op exact); "
+                               "`orbify sizes SOURCE` lists them", check=_at_least(8)),
         "budget": Key(str, ", ".join(BUDGETS), "channels", _choice(BUDGETS)),
         "head": Key(str, ", ".join(HEADS), "invariant", _choice(HEADS)),
         "init": Key(str, ", ".join(INITS), "orbit-average", _choice(INITS)),
@@ -139,7 +139,7 @@ def validate(data: Mapping[str, object], path: Path) -> dict[str, dict[str, obje
     """Check parsed TOML against :data:`SECTIONS`; return every section with its defaults filled in."""
     for section in data:
         if section not in SECTIONS:
-            raise _unknown(path, section, "sections", tuple(SECTIONS))
+            raise _unknown(path, section, "table", "tables", tuple(SECTIONS))
     sections = {}
     for section, keys in SECTIONS.items():
         given = data.get(section, {})
@@ -148,7 +148,7 @@ def validate(data: Mapping[str, object], path: Path) -> dict[str, dict[str, obje
                                f"a [{section}] table with the keys {', '.join(keys)}")
         for key in given:
             if key not in keys:
-                raise _unknown(path, f"{section}.{key}", f"keys in [{section}]", tuple(keys))
+                raise _unknown(path, f"{section}.{key}", "key", f"keys in [{section}]", tuple(keys))
         sections[section] = {key: _value(path, f"{section}.{key}", spec, given.get(key, REQUIRED))
                              for key, spec in keys.items()}
     convert = sections["convert"]
@@ -175,11 +175,11 @@ def _value(path: Path, key_path: str, spec: Key, value: object) -> object:
     return tuple(value) if isinstance(value, list) else value
 
 
-def _unknown(path: Path, key_path: str, kind: str, allowed: tuple[str, ...]) -> RecipeError:
+def _unknown(path: Path, key_path: str, noun: str, kind: str, allowed: tuple[str, ...]) -> RecipeError:
     name = key_path.rpartition(".")[2]
     close = difflib.get_close_matches(name, allowed, n=1)
     hint = f" (did you mean {close[0]!r}?)" if close else ""
-    return recipe_error(path, key_path, f"is not a known key{hint}", f"{kind}: {', '.join(allowed)}")
+    return recipe_error(path, key_path, f"is not a known {noun}{hint}", f"{kind}: {', '.join(allowed)}")
 
 
 def recipe_error(path: Path | str, key_path: str, problem: str, allowed: str) -> RecipeError:
