@@ -19,5 +19,6 @@ from . import export  # noqa: E402,F401
 from . import check  # noqa: E402,F401
 from . import summary  # noqa: E402,F401
 from . import tune  # noqa: E402,F401
+from . import recipes  # noqa: E402,F401
 
 __all__ = ["app", "main"]
