@@ -285,3 +285,12 @@ def test_cli_show_unknown_recipe_is_one_paragraph(capsys):
     assert exit_info.value.code == 2
     err = capsys.readouterr().err
     assert "No recipe named 'resnett'" in err and "Traceback" not in err
+
+
+def test_names_and_paths(tmp_path, monkeypatch):
+    # a plain word is a shipped recipe even when a file of that name is in the working folder
+    monkeypatch.chdir(tmp_path)
+    (tmp_path / "resnet").write_text("not toml [")
+    assert load_recipe("resnet").path == shipped_folder() / "resnet.toml"
+    write(tmp_path, RESNET18)
+    assert load_recipe("mine.toml").name == "mine" and load_recipe("./mine.toml").group == "c4"

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import difflib
+import os
 import sys
 from importlib import resources
 from pathlib import Path
@@ -27,13 +28,14 @@ def shipped_folder() -> Path:
 def load_recipe(name_or_path: str | Path) -> Recipe:
     """The shipped recipe of that name (e.g. ``"resnet"``), or the recipe file at that path.
 
-    A value that names an existing file, or ends in ``.toml``, is read as a path. Raises
-    RecipeError for an unknown name, a missing or unreadable file, malformed TOML, and for
-    unknown keys, wrong types and disallowed values (naming the file and the key path).
+    A ``Path``, or a string that ends in ``.toml`` or holds a path separator, is read as a file;
+    any other string is the name of a shipped recipe. Raises RecipeError for an unknown name, a
+    missing or unreadable file, malformed TOML, and for unknown keys, wrong types and disallowed
+    values (naming the file and the key path).
     """
     text = str(name_or_path)
     path = Path(text)
-    if path.is_file() or path.suffix == SUFFIX or isinstance(name_or_path, Path):
+    if isinstance(name_or_path, Path) or path.suffix == SUFFIX or "/" in text or os.sep in text:
         return read_recipe(path)
     shipped = shipped_folder() / (text + SUFFIX)
     if shipped.is_file():
