@@ -116,9 +116,15 @@ def feed(weight: torch.Tensor, inflow: ChannelMap) -> torch.Tensor:
     out, kernel = weight.shape[0], weight.shape[2:]
     w = weight.reshape(out, inflow.original, inflow.spatial, *kernel)
     old, new = inflow.inflow.indices()
-    values = inflow.inflow.values().to(weight.dtype).reshape(1, -1, *([1] * (w.dim() - 2)))
-    mixed = w.new_zeros(out, inflow.new, *w.shape[2:])
-    mixed.index_add_(1, new, w.index_select(1, old) * values)
+    values = inflow.inflow.values().to(weight.dtype)
+    shape = (1, -1, *([1] * (w.dim() - 2)))
+    if new.numel() == inflow.new and bool((torch.bincount(new, minlength=inflow.new) == 1).all()):
+        order = torch.argsort(new)   # one entry per new channel: a gather
+        picked = w.index_select(1, old[order])
+        mixed = picked if bool((values == 1).all()) else picked * values[order].reshape(shape)
+    else:
+        mixed = w.new_zeros(out, inflow.new, *w.shape[2:])
+        mixed.index_add_(1, new, w.index_select(1, old) * values.reshape(shape))
     return mixed.reshape(out, inflow.new * inflow.spatial, *kernel)
 
 

@@ -103,6 +103,7 @@ class _Layer:
     groups: int = 1
     notes: list[str] = field(default_factory=list)
     fed: tuple[ChannelMap, torch.Tensor] | None = None   # (input map, weight in original row order), kept for reuse
+    matched: tuple[torch.Tensor, torch.Tensor, float] | None = None   # (source, base, residual) found by matching
 
     @property
     def transposed(self) -> bool:
@@ -314,8 +315,10 @@ class Converter:
         if self.carry:
             residual = self._load(layer, self.maps[in_node], out_map)
             if self.matching and self.init != "embed":
-                weight = layer.weight(self.identity_maps[in_node], identity_map.source)
-                identity = tied_residual(layer.new, weight, layer.transposed)
+                identity = residual if _same(self.maps[in_node], self.identity_maps[in_node]) and \
+                    _same(out_map, identity_map) else \
+                    tied_residual(layer.new, layer.weight(self.identity_maps[in_node], identity_map.source),
+                                  layer.transposed)
         self._replace(node, layer.new)
         self.maps[node], self.identity_maps[node] = out_map, identity_map
         self._record(step, layer.old, layer.lin, layer.lout, layer.new, layer.notes, residual,
@@ -373,11 +376,15 @@ class Converter:
         blocks = self.classes.blocks(node)
         chosen = identity_map
         if blocks is not None:
-            terms = [term for other in self.classes.producers(node) if (term := self._match_term(other, layer.lout))]
-            if terms:
-                result = match_channels(terms, identity_map.source, blocks)
+            matched = [(self.layers[other], term) for other in self.classes.producers(node)
+                       if (term := self._match_term(other, layer.lout))]
+            if matched:
+                result = match_channels([term for _, term in matched], identity_map.source, blocks)
                 layer.notes.extend(result.notes)
                 chosen = self._map(layer.lout, result.source, _channels(layer.old)[1])
+                if result.bases is not None:
+                    for (other, _), base, residual in zip(matched, result.bases, result.residuals):
+                        other.matched = (result.source, base, residual)
         self.class_maps[key] = chosen
         return chosen
 
@@ -398,12 +405,16 @@ class Converter:
 
     def _load(self, layer: _Layer, in_map: ChannelMap, out_map: ChannelMap) -> float | None:
         """Carry the original weight and bias into ``layer.new``; return the weight residual (None for embed)."""
+        with torch.no_grad():
+            if layer.old.bias is not None:
+                _assign(layer.new, "bias", rows(layer.old.bias.detach(), out_map.source))
+            if layer.matched is not None and layer.fed[0] is in_map and torch.equal(layer.matched[0], out_map.source):
+                layer.new.parametrizations.weight.original.copy_(layer.matched[1])   # Π found while matching
+                return layer.matched[2]
         embed = self.init == "embed" and isinstance(layer.lout, Orbit)
         weight = layer.weight(in_map, out_map.source[::self.group.order] if embed else out_map.source)
         with torch.no_grad():
             load_weight(layer.new, weight, layer.transposed, slot_zero=embed)
-            if layer.old.bias is not None:
-                _assign(layer.new, "bias", rows(layer.old.bias.detach(), out_map.source))
         if self.init == "embed":
             return None
         with torch.no_grad():
@@ -464,6 +475,13 @@ class Converter:
         self._replace(node, new)
         self._record(step, old, layout, layout, new, [], None)
         return layout
+
+
+def _same(a: ChannelMap, b: ChannelMap) -> bool:
+    """True when two maps carry the same original channels to the same positions."""
+    return a is b or (a.spatial == b.spatial and torch.equal(a.source, b.source) and a.inflow.shape == b.inflow.shape
+                      and torch.equal(a.inflow.indices(), b.inflow.indices())
+                      and torch.equal(a.inflow.values(), b.inflow.values()))
 
 
 def _assign(module: nn.Module, name: str, value: torch.Tensor) -> None:

@@ -66,18 +66,22 @@ class MatchTerm:
     tying: nn.Module
     transposed: bool = False
 
-    def project(self, full: torch.Tensor) -> torch.Tensor:
-        """Π of an out-first full weight (positions, ...), out-first."""
+    def project(self, full: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
+        """Π of an out-first full weight (positions, ...): its base and the tied weight, out-first."""
         stored = full.transpose(0, 1) if self.transposed else full
-        tied = self.tying(self.tying.right_inverse(stored))
-        return tied.transpose(0, 1) if self.transposed else tied
+        base = self.tying.right_inverse(stored)
+        tied = self.tying(base)
+        return base, (tied.transpose(0, 1) if self.transposed else tied)
 
 
 @dataclass
 class MatchResult:
-    source: torch.Tensor          # (positions,) original channel of every position
-    residual: float               # √(Σ_terms ‖W − ΠW‖² / ‖W‖²) with this assignment
-    identity_residual: float      # the same with the identity (usage) assignment
+    """The chosen assignment; per term, the base of Π(W) under it and the relative residuals."""
+
+    source: torch.Tensor                  # (positions,) original channel of every position
+    bases: list[torch.Tensor] | None      # per term: right_inverse of the term's weight under ``source``
+    residuals: list[float] | None         # per term: ‖W − ΠW‖ / ‖W‖ under ``source``
+    identity_residuals: list[float] | None   # the same under the default (usage) assignment
     rounds: int = 0
     notes: list[str] = field(default_factory=list)
 
@@ -89,6 +93,7 @@ def match_channels(terms: list[MatchTerm], usage: torch.Tensor, blocks: int = 1)
     every channel keeps the number of positions it had. Each term's weight counts relative to its
     norm. ``blocks`` > 1 keeps channel c in block ⌊c·blocks/C⌋ at positions of block
     ⌊p·blocks/P⌋ (grouped layers read whole blocks); it needs as many positions as channels.
+    Layers too large to match in a few seconds (:data:`MATCH_WORK_LIMIT`) keep ``usage``, with a note.
     """
     positions = usage.numel()
     channels = terms[0].rows.shape[0]
@@ -99,40 +104,53 @@ def match_channels(terms: list[MatchTerm], usage: torch.Tensor, blocks: int = 1)
     elif blocks > 1 and positions != channels:
         skip = f"the layer is read in {blocks} channel groups and its width changes ({channels} → {positions})"
     if skip is not None:
-        value = math.sqrt(_objective(terms, _normalised(terms), usage)[0])
-        return MatchResult(usage, value, value, 0, [f"channel matching skipped: {skip}"])
-    flat = _normalised(terms)
+        return MatchResult(usage, None, None, None, 0, [f"channel matching skipped: {skip}"])
+    flat = [t.rows.reshape(t.rows.shape[0], -1) for t in terms]
+    weights = [1.0 / max(float((w**2).sum()), 1e-30) for w in flat]   # every term counts relative to its norm
     forbidden = _block_mask(usage, channels, blocks) if blocks > 1 else None
-    best, centres = _objective(terms, flat, usage)
-    identity = best
-    source, rounds = usage, 0
+    best = identity = _Projection(terms, flat, usage, weights)
+    rounds = 0
     for rounds in range(1, MATCH_ROUNDS + 1):
-        score = sum(w @ c.T for w, c in zip(flat, centres))[usage].double().numpy()   # (usage rows, positions)
+        score = sum(k * (w @ c.T) for w, c, k in zip(flat, best.tied, weights))   # (channels, positions)
+        score = score[usage].double().numpy()
         if forbidden is not None:
             score[forbidden] = -np.inf
         row, col = linear_sum_assignment(score, maximize=True)
         candidate = torch.empty_like(usage)
         candidate[torch.from_numpy(col)] = usage[torch.from_numpy(row)]
-        value, new_centres = _objective(terms, flat, candidate)
-        if value >= best * (1 - 1e-9):
+        if torch.equal(candidate, best.source):
             break
-        best, centres, source = value, new_centres, candidate
-    return MatchResult(source, math.sqrt(best), math.sqrt(identity), rounds)
+        projection = _Projection(terms, flat, candidate, weights)
+        if projection.total >= best.total * (1 - 1e-9):
+            break
+        best = projection
+    return MatchResult(best.source, best.bases, best.relative(), identity.relative(), rounds)
 
 
-def _normalised(terms: list[MatchTerm]) -> list[torch.Tensor]:
-    return [t.rows.reshape(t.rows.shape[0], -1) / t.rows.norm().clamp_min(1e-30) for t in terms]
+class _Projection:
+    """Π of every term under one assignment: bases, tied weights (the orbit means), squared residuals.
 
+    ``total`` is the objective: the squared residuals weighted by ``weights``.
+    """
 
-def _objective(terms: list[MatchTerm], flat: list[torch.Tensor], source: torch.Tensor) -> tuple[float, list]:
-    """Σ ‖W_source − Π(W_source)‖² over the (normalised) terms, and the projected weights (the orbit means)."""
-    total, centres = 0.0, []
-    for term, w in zip(terms, flat):
-        full = w[source]
-        tied = term.project(full.reshape(source.numel(), *term.rows.shape[1:])).reshape(source.numel(), -1)
-        total += float(((full - tied) ** 2).sum())
-        centres.append(tied)
-    return total, centres
+    def __init__(self, terms: list[MatchTerm], flat: list[torch.Tensor], source: torch.Tensor,
+                 weights: list[float]):
+        self.source = source
+        self.bases, self.tied, self.squared, self.norms = [], [], [], []
+        in_order = source.numel() == flat[0].shape[0] and torch.equal(source, torch.arange(source.numel()))
+        for term, w in zip(terms, flat):
+            full = w if in_order else w[source]
+            base, tied = term.project(full.reshape(source.numel(), *term.rows.shape[1:]))
+            tied = tied.reshape(source.numel(), -1)
+            self.bases.append(base)
+            self.tied.append(tied)
+            self.squared.append(float(torch.sub(full, tied).pow_(2).sum()))
+            self.norms.append(float((full**2).sum()))
+        self.total = sum(k * s for k, s in zip(weights, self.squared))
+
+    def relative(self) -> list[float]:
+        """‖W − ΠW‖ / ‖W‖ of every term's weight under this assignment."""
+        return [math.sqrt(s / n) if n > 0 else 0.0 for s, n in zip(self.squared, self.norms)]
 
 
 def _block_mask(usage: torch.Tensor, channels: int, blocks: int) -> np.ndarray:
