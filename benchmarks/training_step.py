@@ -78,10 +78,11 @@ def main(
     rounds: int = typer.Option(0, "--rounds", help="Timed rounds (0: 5, or 3 with --quick)."),
     size: int = typer.Option(0, "--size", help="Input size (0: 225, or 65 with --quick); must be safe."),
     profile_steps: bool = typer.Option(False, "--profile", help="Also list the top operators of one step."),
+    models: str = typer.Option("", "--models", help="Comma-separated torchvision names instead of the default ones."),
 ) -> None:
     """Time training steps of original, converted (tied and baked) models and the expansion alone; print tables."""
     harness.fix_threads()
-    names = ["resnet18"] if quick else ["resnet18", "mobilenet_v2"]
+    names = models.split(",") if models else ["resnet18"] if quick else ["resnet18", "mobilenet_v2"]
     size = size or (65 if quick else 225)
     batch = 4 if quick else 16
     groups = ["d4"] if quick else ["c4", "d4"]
