@@ -1,0 +1,75 @@
+"""The demo end to end, as a new user runs it: `orbify demo --out DIR`, then its table and files.
+
+The converted and tuned model must beat the original on rotated inputs (the field tiles, and the
+upright tiles moved by every group element) with an invariance error of at most 1e-5, and the exported
+program must behave the same. The whole run takes about two minutes on two CPU cores
+(the timing target itself lives in benchmarks/, not here).
+"""
+
+import json
+
+import numpy as np
+import pytest
+import torch
+from typer.testing import CliRunner
+
+from orbify.cli import app
+from orbify.demo import FILES, PLOTS
+from orbify.example import make_tiles
+
+TOLERANCE = 1e-5
+
+
+@pytest.fixture(scope="module")
+def demo_run(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("demo")
+    result = CliRunner().invoke(app, ["demo", "--out", str(folder), "--quiet"])
+    return folder, result
+
+
+@pytest.mark.slow
+def test_demo_prints_the_table_and_the_tuned_model_beats_the_original_on_rotated_tiles(demo_run):
+    folder, result = demo_run
+    assert result.exit_code == 0, result.output
+    for row in ("accuracy, upright tiles", "accuracy, field tiles", "invariance error", "parameters stored",
+                "MACs per tile", "ms per tile"):
+        assert row in result.output, row
+    figures = json.loads((folder / "results.json").read_text())
+    columns = {column["name"]: column for column in figures["columns"]}
+    assert list(columns) == ["original", "converted", "tuned", "exported"]
+    original, tuned, exported = columns["original"], columns["tuned"], columns["exported"]
+    assert tuned["any_accuracy"] > original["any_accuracy"]
+    assert tuned["moved_accuracy"] > original["moved_accuracy"]
+    assert tuned["worst_moved_accuracy"] > original["worst_moved_accuracy"]
+    assert tuned["invariance_error"] <= TOLERANCE and exported["invariance_error"] <= TOLERANCE
+    assert original["invariance_error"] > 0.1          # the plain model is far from invariant
+    assert exported["any_accuracy"] == pytest.approx(tuned["any_accuracy"], abs=0.01)
+    assert tuned["params"] < original["params"] and tuned["macs"] == original["macs"]
+
+
+@pytest.mark.slow
+def test_demo_leaves_its_files(demo_run):
+    folder, result = demo_run
+    assert result.exit_code == 0, result.output
+    for name in (*FILES.values(), *PLOTS.values()):
+        path = folder / name
+        assert path.is_file() and path.stat().st_size > 0, name
+
+
+@pytest.mark.slow
+def test_the_exported_program_is_invariant_under_numpy_rotations(demo_run):
+    """The pt2 file runs without orbify; the group action comes from numpy.rot90 / numpy.flip (check-values.md)."""
+    folder, result = demo_run
+    assert result.exit_code == 0, result.output
+    group = json.loads((folder / "results.json").read_text())["group"]
+    assert group in ("c4", "d4")
+    program = torch.export.load(folder / FILES["exported"]).module()
+    images, _ = make_tiles(16, split="any", seed=7)
+    mirrors = (False, True) if group == "d4" else (False,)
+    with torch.no_grad():
+        logits = program(images)
+        for turns in range(4):
+            for mirror in mirrors:
+                moved = np.flip(images.numpy(), axis=-1) if mirror else images.numpy()
+                moved = torch.from_numpy(np.ascontiguousarray(np.rot90(moved, turns, axes=(-2, -1))))
+                assert float((program(moved) - logits).norm() / logits.norm()) <= TOLERANCE
