@@ -38,7 +38,7 @@ from orbify.errors import CheckpointError, SourceError, TrustError
 from orbify.fileio import PathLike, damaged_file_error, load_torch_weights, unsafe_globals
 
 TORCHVISION_PREFIX = "torchvision:"
-_FACTORY_PATTERN = re.compile(r"^(?P<module>[A-Za-z_][\w.]*):(?P<attribute>[A-Za-z_][\w.]*)$")
+FACTORY_PATTERN = re.compile(r"^(?P<module>[A-Za-z_][\w.]*):(?P<attribute>[A-Za-z_][\w.]*)$")
 _ACCEPTED_FORMS = (
     "give torchvision:NAME (e.g. torchvision:resnet18), package.module:factory, "
     "or the path of a model file"
@@ -111,7 +111,7 @@ def rebuild(reference: str) -> nn.Module:
     """
     if reference.startswith(TORCHVISION_PREFIX):
         module = _build_torchvision(reference[len(TORCHVISION_PREFIX):])
-    elif _FACTORY_PATTERN.match(reference):
+    elif FACTORY_PATTERN.match(reference):
         module = _build_factory(reference)
     else:
         raise SourceError(
@@ -130,7 +130,7 @@ def _build(spec: str, *, trust_pickle: bool) -> LoadedSource:
     path = Path(spec)
     if path.is_file():
         return _load_file(path, trust_pickle=trust_pickle)
-    if _FACTORY_PATTERN.match(spec):
+    if FACTORY_PATTERN.match(spec):
         return LoadedSource(rebuild(spec), spec)
     if path.exists():
         raise SourceError(f"The model source {spec!r} is a directory, not a file", fix=_ACCEPTED_FORMS)

@@ -25,7 +25,7 @@ from ..convert import MATCH_DEFAULT
 from ..errors import GroupError, RecipeError
 from ..groups import parse_group
 from ..plan import BUDGETS, HEADS, INITS
-from ..sources import _FACTORY_PATTERN, TORCHVISION_PREFIX
+from ..sources import FACTORY_PATTERN, TORCHVISION_PREFIX
 from ..teacher import VIEW_COMBINATIONS
 from ..tune import SCHEDULES, TuneOptions
 
@@ -86,7 +86,7 @@ def _architecture(entry: str) -> str | None:
     """None for a known torchvision name or a ``package.module:factory`` reference."""
     name = entry[len(TORCHVISION_PREFIX):] if entry.startswith(TORCHVISION_PREFIX) else entry
     if ":" in name:
-        return None if _FACTORY_PATTERN.match(name) else f"{entry!r} is not of the form package.module:factory"
+        return None if FACTORY_PATTERN.match(name) else f"{entry!r} is not of the form package.module:factory"
     known = _torchvision_names()
     if known is None or name in known:
         return None   # without torchvision, a name cannot be checked until a model is built from it
