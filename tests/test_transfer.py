@@ -89,6 +89,37 @@ def test_embed_on_trained_digits_cnn_equals_test_time_averaging(digits):
         assert relative(converted.eval()(x), test_time_average(original, group, x)) <= 1e-9
 
 
+class GroupedSegmenter(nn.Module):
+    """A small dense-output net with a grouped conv, a transposed conv and a skip concatenation."""
+
+    def __init__(self):
+        super().__init__()
+        self.enc = nn.Sequential(nn.Conv2d(3, 8, 3, padding=1), nn.BatchNorm2d(8), nn.ReLU())
+        self.down = nn.Sequential(nn.Conv2d(8, 8, 4, stride=2, padding=1, groups=2), nn.BatchNorm2d(8), nn.ReLU())
+        self.up = nn.ConvTranspose2d(8, 8, 4, stride=2, padding=1)
+        self.mix = nn.Conv2d(16, 8, 3, padding=1)
+        self.head = nn.Conv2d(8, 2, 1)
+
+    def forward(self, x):
+        e = self.enc(x)
+        return self.head(torch.relu(self.mix(torch.cat([self.up(self.down(e)), e], 1))))
+
+
+@pytest.mark.parametrize("group_name", ["c4", "d4"])
+def test_embed_of_a_dense_output_equals_the_moved_back_average(group_name):
+    # For a map head the test-time average moves every output back: mean over g of g·f(g⁻¹·x).
+    torch.manual_seed(0)
+    group = parse_group(group_name)
+    net = GroupedSegmenter()
+    recalibrate_batch_norm(net, [torch.randn(8, 3, 12, 12)])
+    net = net.eval().double()
+    x = torch.randn(2, 3, 12, 12, dtype=torch.float64)
+    converted, _ = convert(net, group, budget="fields", head="map", init="embed", example_input=x)
+    with torch.no_grad():
+        expected = sum(group.act_grid(a, net(group.act_grid(group.inverse(a), x))) for a in range(group.order))
+        assert relative(converted.eval()(x), expected / group.order) <= 1e-9
+
+
 # -- orbit averaging -------------------------------------------------------------------------------
 
 def test_orbit_average_of_bias_norm_affine_and_statistics():
@@ -205,7 +236,10 @@ def test_matching_keeps_grouped_blocks():
 
 
 class SmallResidualNet(nn.Module):
-    """stem → [a → b] + stem → pool → fc: the stem and b write the same (added) channels."""
+    """stem → [a → b → squeeze-excitation gate] + stem → pool → fc.
+
+    The stem, b and the gate's second conv write the same channels (added or multiplied together).
+    """
 
     def __init__(self):
         super().__init__()
@@ -215,11 +249,14 @@ class SmallResidualNet(nn.Module):
         self.a_bn = nn.BatchNorm2d(16)
         self.b = nn.Conv2d(16, 16, 3, padding=1)
         self.b_bn = nn.BatchNorm2d(16)
+        self.squeeze = nn.Conv2d(16, 8, 1)
+        self.excite = nn.Conv2d(8, 16, 1)
         self.fc = nn.Linear(16, 5)
 
     def forward(self, x):
         s = torch.relu(self.stem_bn(self.stem(x)))
         y = self.b_bn(self.b(torch.relu(self.a_bn(self.a(s)))))
+        y = y * torch.sigmoid(self.excite(torch.relu(self.squeeze(y.mean((2, 3), keepdim=True)))))
         return self.fc(torch.relu(y + s).mean((2, 3)))
 
 
@@ -241,8 +278,8 @@ def _permute(model: nn.Module, writers: list[str], norms: list[str], readers: li
 
 @pytest.mark.parametrize("group_name", ["c4", "d4"])
 def test_matching_recovers_a_shuffled_converted_model(group_name):
-    # Convert, bake to plain modules, then shuffle the channels in a function-preserving way (the stem
-    # and b share one order because they are added). Converting the shuffled plain model again with
+    # Convert, bake to plain modules, then shuffle the channels in a function-preserving way (the stem,
+    # b and the gate's excite conv share one order because they are added and multiplied). Converting the shuffled plain model again with
     # matching finds tied assignments (every residual ~0) and computes the same function; without
     # matching the residuals are large.
     torch.manual_seed(0)
@@ -255,8 +292,9 @@ def test_matching_recovers_a_shuffled_converted_model(group_name):
     plain = bake_model(first.eval())
     with torch.no_grad():
         expected = plain(x)
-    _permute(plain, ["stem", "b"], ["stem_bn", "b_bn"], ["a", "fc"], torch.randperm(16))
+    _permute(plain, ["stem", "b", "excite"], ["stem_bn", "b_bn"], ["a", "squeeze", "fc"], torch.randperm(16))
     _permute(plain, ["a"], ["a_bn"], ["b"], torch.randperm(16))
+    _permute(plain, ["squeeze"], [], ["excite"], torch.randperm(8))
     with torch.no_grad():
         torch.testing.assert_close(plain(x), expected, rtol=1e-5, atol=1e-5)
     matched, plan = convert(plain, group, example_input=x, match=True)
