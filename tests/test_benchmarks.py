@@ -65,17 +65,19 @@ def test_inference_quick():
     output = run_quick("inference.py")
     variants = {row[2]: row for row in rows(output, "resnet18") if len(row) == 5}
     for batch in ("1", "4"):
-        for label in ("original", "d4 converted, tying cached", "d4 converted, baked", "original averaged over d4"):
+        for label in ("original", "d4 converted, tying cached", "d4 converted, baked",
+                      "original averaged over d4, views in one batch", "original averaged over d4, one forward per view"):
             row = next(r for r in rows(output, "resnet18") if len(r) == 5 and r[1] == batch and r[2] == label)
             assert leading_number(row[3]) > 0 and leading_number(row[4]) > 0
     assert any(label.startswith("d4 expanding all tied weights") for label in variants)
-    ratio_rows = [row for row in rows(output, "resnet18") if len(row) == 7]
+    ratio_rows = [row for row in rows(output, "resnet18") if len(row) == 8]
     assert len(ratio_rows) == 4   # batches 1 and 4, wall and CPU
     for row in ratio_rows:
         assert row[2].startswith("d4")
-        for cell in row[3:]:
+        for cell in row[3:7]:
             assert leading_number(cell) > 0
             assert cell.endswith(" met") or cell.endswith(" NOT met")
+        assert leading_number(row[7]) > 0
 
 
 def test_training_step_quick():
