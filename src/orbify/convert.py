@@ -320,6 +320,7 @@ class Converter:
                     tied_residual(layer.new, layer.weight(self.identity_maps[in_node], identity_map.source),
                                   layer.transposed)
         self._replace(node, layer.new)
+        self.layers.pop(node)   # done: drop the weights kept for matching
         self.maps[node], self.identity_maps[node] = out_map, identity_map
         self._record(step, layer.old, layer.lin, layer.lout, layer.new, layer.notes, residual,
                      (getattr(layer.old, "groups", 1), layer.groups), identity)
