@@ -21,16 +21,23 @@ runner = CliRunner()
 
 
 def run(*args):
+    """Exit code and everything printed (stdout and stderr)."""
     result = runner.invoke(app, [str(a) for a in args])
     return result.exit_code, result.output
 
 
-def assert_one_paragraph_error(code, output, *needles):
+def fails(*args):
+    """Exit code, everything printed, and what went to stderr alone."""
+    result = runner.invoke(app, [str(a) for a in args])
+    return result.exit_code, result.output, result.stderr
+
+
+def assert_one_paragraph_error(code, output, errors, *needles):
     assert code not in (0, None), output
     assert "Traceback" not in output, output
-    text = output.strip()
+    text = errors.strip()
     assert text.startswith("error:"), output
-    assert "\n\n" not in text, output          # one paragraph
+    assert "\n" not in text, output          # one paragraph, printed without wrapping
     flat = " ".join(text.split())
     for needle in needles:
         assert needle in flat, (needle, output)
@@ -53,7 +60,7 @@ def test_convert_example_chooses_the_tile_size_and_writes_an_invariant_model(tmp
     assert "input size 33: the bundled example's tile size" in flat
     for row in ("parameters", "MACs per image", "worst weight residual", "output invariance error"):
         assert row in flat
-    assert "61,078" in flat and "7,640" in flat     # d4, channels budget: an eighth of the parameters (÷8 up to biases)
+    assert "61,078" in flat and "7,640" in flat     # d4, channels budget: an eighth of the parameters, biases aside
     assert "tip: the shipped recipe 'example'" in flat
     loaded = orbify.load(out)
     assert loaded.plan.group == "d4" and tuple(loaded.plan.input_shape[-2:]) == (33, 33)
@@ -97,6 +104,18 @@ def test_convert_reads_weights_for_a_factory_source_and_leaves_them_unchanged(tm
     assert code == 0, output
     assert sha256_file(example_weights) == before
     assert orbify.load(out).plan.budget == "params"
+
+
+def test_convert_stops_at_a_node_and_pools_its_orbits_there(tmp_path):
+    out = tmp_path / "partial.orb"
+    code, output = run("convert", "example", "--group", "c4", "--stop-at", "features.2", "-o", out)
+    assert code == 0, output
+    loaded = orbify.load(out)
+    assert loaded.plan.stop_at == "features.2"
+    layouts = {layer.target: (layer.layout_in, layer.layout_out) for layer in loaded.plan.layers}
+    assert layouts["features.2.0"] == ("orbit(8)", "orbit(16)")      # c4: 32 and 64 channels in orbits of 4
+    for target in ("features.3.0", "features.3.1", "classifier"):    # after the stop: plain channels
+        assert all(layout.startswith("plain(") for layout in layouts[target]), (target, layouts[target])
 
 
 # -- input sizes -------------------------------------------------------------------------------------------------
@@ -168,31 +187,31 @@ def test_convert_help_lists_every_option():
     (["no_such_package.models:build"], ["Cannot import the module 'no_such_package.models'"]),
     (["missing-model.pt"], ["'missing-model.pt' does not exist"]),
     (["example", "--recipe", "no-such-recipe"], ["No recipe named 'no-such-recipe'"]),
+    (["example", "--init", "embed"], ["needs the 'fields' budget"]),
+    (["example", "--head", "map"], ["has no spatial axes", "head='invariant'"]),
 ])
 def test_bad_input_is_one_paragraph_and_writes_nothing(tmp_path, args, needles):
     out = tmp_path / "x.orb"
-    code, output = run("convert", *args, "-o", out)
-    assert_one_paragraph_error(code, output, *needles)
+    assert_one_paragraph_error(*fails("convert", *args, "-o", out), *needles)
     assert not out.exists()
 
 
 def test_missing_weights_file(tmp_path):
-    code, output = run("convert", "orbify.example.model:build_example_cnn", "--weights", tmp_path / "nope.pt",
-                       "-o", tmp_path / "x.orb")
-    assert_one_paragraph_error(code, output, "nope.pt", "does not exist")
+    refused = fails("convert", "orbify.example.model:build_example_cnn", "--weights", tmp_path / "nope.pt",
+                    "-o", tmp_path / "x.orb")
+    assert_one_paragraph_error(*refused, "nope.pt", "does not exist")
 
 
 def test_existing_output_needs_force_and_inputs_are_never_overwritten(tmp_path, example_weights):
     out = tmp_path / "x.orb"
     out.write_bytes(b"an earlier result")
     kept, weights_before = sha256_file(out), sha256_file(example_weights)
-    code, output = run("convert", "example", "-o", out)
-    assert_one_paragraph_error(code, output, "already exists", "--force")
+    assert_one_paragraph_error(*fails("convert", "example", "-o", out), "already exists", "--force")
     assert sha256_file(out) == kept
     # even with --force, the weights file given as input is not replaced by the output
-    code, output = run("convert", "orbify.example.model:build_example_cnn", "--weights", example_weights,
-                       "-o", example_weights, "--force")
-    assert_one_paragraph_error(code, output, "is an input of this command")
+    refused = fails("convert", "orbify.example.model:build_example_cnn", "--weights", example_weights,
+                    "-o", example_weights, "--force")
+    assert_one_paragraph_error(*refused, "is an input of this command")
     assert sha256_file(example_weights) == weights_before
 
 
@@ -200,8 +219,7 @@ def test_a_converted_file_is_not_converted_again(tmp_path):
     first = tmp_path / "first.orb"
     assert run("convert", "example", "-o", first)[0] == 0
     before = sha256_file(first)
-    code, output = run("convert", first, "-o", tmp_path / "second.orb")
-    assert_one_paragraph_error(code, output, "already a converted model")
+    assert_one_paragraph_error(*fails("convert", first, "-o", tmp_path / "second.orb"), "already a converted model")
     assert sha256_file(first) == before and not (tmp_path / "second.orb").exists()
 
 
@@ -214,8 +232,7 @@ def test_debug_shows_the_traceback(tmp_path):
 def test_demo_refuses_to_overwrite_its_files_without_force(tmp_path):
     (tmp_path / "results.md").write_text("earlier")
     before = sha256_file(tmp_path / "results.md")
-    code, output = run("demo", "--out", tmp_path)
-    assert_one_paragraph_error(code, output, "already holds demo files", "--force")
+    assert_one_paragraph_error(*fails("demo", "--out", tmp_path), "already holds demo files", "--force")
     assert sha256_file(tmp_path / "results.md") == before
     assert sorted(p.name for p in tmp_path.iterdir()) == ["results.md"]
 
@@ -223,5 +240,4 @@ def test_demo_refuses_to_overwrite_its_files_without_force(tmp_path):
 def test_demo_refuses_a_file_as_its_folder(tmp_path):
     target = tmp_path / "a-file"
     target.write_text("x")
-    code, output = run("demo", "--out", target)
-    assert_one_paragraph_error(code, output, "is a file")
+    assert_one_paragraph_error(*fails("demo", "--out", target), "is a file")

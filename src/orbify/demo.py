@@ -47,8 +47,8 @@ EXAMPLE_SOURCE = "orbify.example:load_example_model"
 RECIPE = "example"
 """The shipped recipe for the bundled model: budget, channel matching, input size and the tuning settings."""
 DEMO_GROUP = "c4"
-"""Quarter turns. Measured with the recipe's tuning settings on 600 field tiles (two tuning seeds):
-c4 reached 82 % and 82 %, d4 76 % and 81 %. The six particle shapes are mirror-symmetric, so a
+"""Quarter turns. Measured with the demo's settings on 600 field tiles, tuning seeds 0 and 1:
+c4 reached 82 % and 80 %, d4 76 % and 76 %. The six particle shapes are mirror-symmetric, so a
 c4 model also recognises the mirrored field tiles, and it keeps twice d4's parameters at the
 same MACs. The recipe's d4 is overridden here as ``--group c4`` would override it."""
 
@@ -180,11 +180,12 @@ def run_demo(out_dir: str | Path, *, force: bool = False, progress: bool = True)
 
     Steps: convert the example CNN under :data:`DEMO_GROUP` with the settings of the shipped recipe
     :data:`RECIPE`, check it, tune it by distillation on :data:`TRAIN_TILES` upright tiles (the
-    recipe's tuning settings, the tiles' labels added), check it again, export it as a pt2 program, then measure the original, converted, tuned and exported models on fresh tiles.
+    recipe's tuning settings, the tiles' labels added), check it again, export it as a pt2 program,
+    then measure the original, converted, tuned and exported models on fresh tiles.
     ``out_dir`` is created if needed; the files of :data:`FILES` and :data:`PLOTS` are written in it
     (plots only when matplotlib is installed). With ``progress`` each step is reported on the
-    terminal. The run is repeatable: every random draw is seeded, and the caller's torch random
-    state is left as it was.
+    terminal. The run is repeatable with the same software and thread count: every random draw is
+    seeded, and the caller's torch random state is left as it was.
 
     Raises :class:`~orbify.errors.OutputError` before any work when ``out_dir`` is a file or one
     of the files exists and ``force`` is false.

@@ -100,10 +100,12 @@ def input_channels(model: nn.Module) -> int:
     return 3
 
 
-GROUP_HELP = "The rotation group: d4 (quarter turns and mirror images), c4 (quarter turns), c2, d1, d2; c8, d8, ... rotate approximately."
+GROUP_HELP = ("The rotation group: d4 (quarter turns and mirror images), c4 (quarter turns), c2, d1, d2; "
+              "c8, d8, ... rotate approximately.")
 BUDGET_HELP = ("channels: same width, ÷|G| parameters, same MACs; params: ≈ same parameters, ×|G| MACs; "
                "fields: ×|G| width, the original embedded losslessly.")
-HEAD_HELP = "invariant: a classifier whose output ignores the group; map: a dense output (mask) that moves with the input."
+HEAD_HELP = ("invariant: a classifier whose output ignores the group; map: a dense output (mask) that moves "
+             "with the input.")
 INIT_HELP = ("orbit-average: project the pretrained weights onto the tied ones; embed (fields budget only): "
              "start exactly at the original averaged over the group.")
 QUICK_CHECK_IMAGES = 2
@@ -211,7 +213,8 @@ def suggest_recipe(architecture: str) -> None:
 
 
 def refuse_output(out: Path, force: bool, inputs: list[Path | None]) -> None:
-    """Fail before any work when ``out`` exists without ``force``, or names one of the ``inputs`` (never overwritten)."""
+    """Fail before any work when ``out`` exists without ``force``, or when it is one of the ``inputs``
+    (an input is never overwritten, even with ``force``)."""
     for given in inputs:
         if given is not None and given.exists() and out.exists() and out.resolve() == given.resolve():
             raise OutputError(f"The output {str(out)!r} is an input of this command",
