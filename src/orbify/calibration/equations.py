@@ -92,11 +92,9 @@ class LayerEquations:
         self.slots, self.actions = self._actions(slots)
         rows = self.targets.numel()
         self.row_groups = torch.stack([self._row_group(torch.arange(rows), s) for s in self.slots])  # (slots, rows)
-        shape = (self.groups, self.features)
-        self.gram = torch.zeros(*shape, self.features, dtype=torch.float64)
-        self.sums = torch.zeros(shape, dtype=torch.float64)
+        self.gram: torch.Tensor | None = None
+        self.sums = torch.zeros(self.groups, self.features, dtype=torch.float64)
         self.count = 0
-        self.dtype = torch.float32
         self.cross = torch.zeros(len(self.slots), rows, self.features, dtype=torch.float64)
         self.target_sums = torch.zeros(len(self.slots), rows, dtype=torch.float64)
         self.target_squares = torch.zeros(len(self.slots), rows, dtype=torch.float64)
@@ -151,10 +149,11 @@ class LayerEquations:
 
     def add(self, inputs: torch.Tensor, outputs: dict[int, torch.Tensor]) -> None:
         """Accumulate one batch: the converted input, and per slot the original's aligned output (B, C, ...)."""
-        self.dtype = inputs.dtype
         u = self.unfold(inputs)
         batch, _, _, positions = u.shape
-        self.gram += torch.einsum("bgfl,bghl->gfh", u, u).double()
+        if self.gram is None:   # in the model's precision: summing a few batches in float32 loses nothing that matters
+            self.gram = torch.zeros(self.groups, self.features, self.features, dtype=u.dtype)
+        self.gram += torch.einsum("bgfl,bghl->gfh", u, u)
         self.sums += u.sum((0, 3)).double()
         self.count += batch * positions
         for i, slot in enumerate(self.slots):
@@ -232,10 +231,11 @@ class LayerEquations:
         for view, group in enumerate(key.tolist()):
             g, s = self.gram[group], self.sums[group]
             if isinstance(self.actions, torch.Tensor):
-                g, s = self.actions.T @ g @ self.actions, s @ self.actions
-            elif self.actions is not None:   # permuted in the model's precision: float32 halves the memory traffic
+                g = self.actions.T @ g.double() @ self.actions
+                s = s @ self.actions
+            elif self.actions is not None:
                 index = self.actions[view]
-                g, s = g.to(self.dtype)[index[:, None], index[None, :]], s[index]
+                g, s = g[index[:, None], index[None, :]], s[index]
             gram, sums = gram + g, sums + s
         return gram.double(), sums
 

@@ -142,10 +142,12 @@ class ChannelChoice:
         requests = {}
         if method == "reconstruction":
             for key, nodes in readers.items():
-                if nodes:
+                # a depthwise layer reads each channel alone; the layers that mix channels judge the choice
+                mixing = [n for n in nodes if chooses_channels(original.get_submodule(n.target))]
+                if mixing:
                     channels = shape(writers[key][0])[1]
-                    weights = sum(_reading(original.get_submodule(n.target), channels) for n in nodes)
-                    requests[key] = SpanRequest(str(nodes[0].target), channels, weights, orbits_of(nodes[0]) is None)
+                    weights = sum(_reading(original.get_submodule(n.target), channels) for n in mixing)
+                    requests[key] = SpanRequest(str(mixing[0].target), channels, weights, orbits_of(mixing[0]) is None)
         covariances = span_statistics(original, requests, batches, group, slots) if requests else {}
         for key, nodes in writers.items():
             blocks = self.classes.blocks(nodes[0]) or 1

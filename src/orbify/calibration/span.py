@@ -68,7 +68,7 @@ class OrbitCovariance:
             if rows.shape[0]:
                 # B[c, c', t] += Σ ã[c, h] ã[c', h·t]
                 self.block_row += torch.einsum("ic,idt->cdt", rows[:, :, h], rows[:, :, self.table[h]]).double()
-        self.sums += views.double().sum((0, 2))
+        self.sums += views.sum((0, 2)).double()
         self.count += views.shape[0] * width
         self.samples += views.shape[0]
 
@@ -101,12 +101,12 @@ def greedy_orbits(block_row: torch.Tensor, table: torch.Tensor, weights: torch.T
     channels gets the same number of kept channels.
     """
     channels, _, width = block_row.shape
-    b = block_row.clone()
+    b = block_row.float()   # float32: the steps only rank candidates, and they are bound by memory traffic
     inverse = _inverses(table)
     relative = table[inverse]                          # [s, s'] = s⁻¹·s'
     scale = float(b[torch.arange(channels), torch.arange(channels), 0].mean().clamp_min(1e-30))
-    jitter = 1e-6 * scale * torch.eye(width, dtype=b.dtype)
-    target_weights = weights.to(b.dtype)
+    jitter = 1e-5 * scale * torch.eye(width, dtype=b.dtype)
+    root_weights = (weights / weights.max().clamp_min(1e-30)).to(b.dtype).clamp_min(0).sqrt()
     quota = count // blocks if blocks > 1 and count % blocks == 0 and channels % blocks == 0 else None
     owner = torch.arange(channels) * blocks // channels
     taken = torch.zeros(channels, dtype=torch.bool)
@@ -114,9 +114,10 @@ def greedy_orbits(block_row: torch.Tensor, table: torch.Tensor, weights: torch.T
     for _ in range(min(count, channels)):
         own = b[every, every][:, relative]            # (C, |G|, |G|): cov of each candidate's block
         factor, _ = torch.linalg.cholesky_ex(own + jitter)
-        towards = b[:, :, inverse].permute(0, 2, 1)     # [k, s, c'] = cov[(k, s), (c', 0)]
-        explained = torch.linalg.solve_triangular(factor, towards, upper=False)
-        gain = (explained.square().sum(1) * target_weights).sum(1)
+        # gain_k = Σ_c' w_c' v_k,c'ᵀ own_k⁻¹ v_k,c' with v_k,c'[s] = cov[(k, s), (c', 0)] = b[k, c', s⁻¹]
+        scaled = b * root_weights[None, :, None]
+        products = torch.bmm(scaled.transpose(1, 2), scaled)[:, inverse][:, :, inverse]
+        gain = torch.cholesky_solve(products, factor).diagonal(dim1=1, dim2=2).sum(1)
         allowed = ~taken
         if quota is not None:
             allowed &= ~(torch.bincount(owner[taken], minlength=blocks) >= quota)[owner]
@@ -124,9 +125,8 @@ def greedy_orbits(block_row: torch.Tensor, table: torch.Tensor, weights: torch.T
         j = int(gain.argmax())
         taken[j] = True
         column = b[:, j][:, relative]                   # [c', t, s] = cov[(c', t), (j, s)]
-        whitened = torch.linalg.solve_triangular(factor[j], column.reshape(-1, width).T, upper=False).T
-        whitened = whitened.reshape(channels, width, width)
-        b -= torch.einsum("ci,dti->cdt", whitened[:, 0], whitened)
+        whitened = torch.linalg.solve_triangular(factor[j], column.reshape(-1, width).T, upper=False)  # (|G|, C'·|G|)
+        b -= (whitened.T.reshape(channels, width, width)[:, 0] @ whitened).reshape(channels, channels, width)
     if count > channels:
         return torch.arange(count) % channels
     return torch.nonzero(taken).flatten()
