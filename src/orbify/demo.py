@@ -47,7 +47,7 @@ EXAMPLE_SOURCE = "orbify.example:load_example_model"
 RECIPE = "example"
 """The shipped recipe for the bundled model: budget, channel matching, input size and the tuning settings."""
 DEMO_GROUP = "c4"
-"""Quarter turns. Measured with the demo's settings on 600 field tiles, tuning seeds 0 and 1:
+"""Quarter turns. Measured with the demo's tuning settings on 600 field tiles, tuning seeds 0 and 1:
 c4 reached 82 % and 80 %, d4 76 % and 76 %. The six particle shapes are mirror-symmetric, so a
 c4 model also recognises the mirrored field tiles, and it keeps twice d4's parameters at the
 same MACs. The recipe's d4 is overridden here as ``--group c4`` would override it."""
