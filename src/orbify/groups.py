@@ -9,42 +9,65 @@ first. Composition follows from ``F R^k = R^-k F``::
     (k1, m1)·(k2, m2) = (k1 + (-1)^m1·k2 mod N, m1 xor m2)
 
 For N dividing 4 every element moves pixels exactly (a permutation); such groups are *exact*.
-Other N rotate by interpolation and are *approximate* (see :mod:`orbify.resample`).
+Other N rotate by interpolation and are *approximate* (see :mod:`orbify.resample`): images by
+bilinear interpolation, filters by the group's ``resampling`` method ("harmonic", the default,
+or "bilinear"). Inside an approximate group the elements that turn by whole quarter turns (and
+the mirror) still act exactly, and :meth:`Group.kernel_matrices` keeps them exact on filters.
 """
 
 from __future__ import annotations
 
 import math
+import functools
 import re
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import cached_property
 
 import torch
 
 from .errors import GroupError
+from .resample import METHODS, kernel_rotation_matrix
 
-_NAME = re.compile(r"^\s*([cCdD])\s*(\d+)\s*$")
+_NAME = re.compile(r"^\s*([cCdD])\s*(\d+)\s*(?::\s*([a-z]+)\s*)?$")
 
 
 @dataclass(frozen=True)
 class Group:
-    """The cyclic group cN (``mirror=False``) or the dihedral group dN (``mirror=True``)."""
+    """The cyclic group cN (``mirror=False``) or the dihedral group dN (``mirror=True``).
+
+    ``resampling`` chooses how an approximate group rotates filters by angles off the 90° grid
+    ("harmonic" or "bilinear", see :func:`orbify.resample.kernel_rotation_matrix`); exact groups
+    never resample and always hold the default.
+    """
 
     rotations: int
     mirror: bool
+    resampling: str = "harmonic"
 
     def __post_init__(self) -> None:
         if self.rotations < 1:
             raise GroupError(f"A group needs at least one rotation, got N={self.rotations}",
                              fix="use cN or dN with N ≥ 1, e.g. c4 or d4")
+        if self.resampling not in METHODS:
+            raise GroupError(f"Unknown filter resampling {self.resampling!r} for {self.name}",
+                             fix=f"use one of: {', '.join(METHODS)}")
+        if self.exact:   # exact groups never resample: one group, one value
+            object.__setattr__(self, "resampling", METHODS[0])
 
     # -- naming -------------------------------------------------------------------------
     @property
     def name(self) -> str:
+        """The mathematical name: ``c8``, ``d4``."""
         return f"{'d' if self.mirror else 'c'}{self.rotations}"
 
+    @property
+    def spec(self) -> str:
+        """The name :func:`parse_group` reads back to this very group: ``c8``, or ``c8:bilinear``
+        for an approximate group with the non-default resampling."""
+        return self.name if self.exact or self.resampling == METHODS[0] else f"{self.name}:{self.resampling}"
+
     def __str__(self) -> str:
-        return self.name
+        return self.spec
 
     @property
     def order(self) -> int:
@@ -92,6 +115,10 @@ class Group:
     def is_mirror(self, a: int) -> bool:
         return bool(self.elements[a][1])
 
+    def acts_exactly(self, a: int) -> bool:
+        """True when element a turns by a whole number of quarter turns (a pixel permutation)."""
+        return (4 * self.elements[a][0]) % self.rotations == 0
+
     # -- action on the pixel grid --------------------------------------------------------
     def quarter_turns(self, a: int) -> int:
         """Number of exact quarter turns of element a (exact groups only)."""
@@ -114,6 +141,17 @@ class Group:
 
         return rotate_images(x, self.angle(a), mirror=bool(m))
 
+    def kernel_matrices(self, size: int) -> torch.Tensor:
+        """Matrices (|G|, size², size², float64) moving a size×size filter by each element.
+
+        ``(g·k).flatten() = M[g] @ k.flatten()``. Exact elements give the permutation of
+        :meth:`act_grid`; the others resample by ``self.resampling``. A mirrored element
+        (k, 1) — "mirror, then rotate by θ" — is built as "rotate by -θ, then mirror" (the same
+        motion of the plane), which makes every quarter turn and the mirror compose exactly with
+        every element: M[h·g] = M[h] M[g] whenever h acts exactly. Cached; never modify the result.
+        """
+        return _kernel_matrices(self, size)
+
     def _require_exact(self, what: str) -> None:
         if not self.exact:
             raise GroupError(f"{what} needs an exact group, but {self.name} rotates by "
@@ -121,19 +159,47 @@ class Group:
                              fix="use c1, c2, c4, d1, d2 or d4 here")
 
 
-def parse_group(spec: str | Group) -> Group:
-    """Parse ``"c4"``, ``"D4"``, ``"d1"`` ... into a :class:`Group` (a Group passes through)."""
+@functools.lru_cache(maxsize=64)
+def _kernel_matrices(group: Group, size: int) -> torch.Tensor:
+    flip = torch.eye(size * size, dtype=torch.float64).reshape(-1, size, size).flip(-1).reshape(size * size, -1).T
+    matrices = []
+    for k, m in group.elements:
+        turn = _rotation_matrix(size, -k if m else k, group.rotations, group.resampling)
+        matrices.append(flip @ turn if m else turn)
+    return torch.stack(matrices)
+
+
+def _rotation_matrix(size: int, k: int, n: int, method: str) -> torch.Tensor:
+    """Filter rotation by k/n of a full turn: exact quarter turns q times a resampling by the rest.
+
+    The rest, 2π(4k - qn)/(4n) in [-45°, 45°) with q = round(4k/n) (halves rounded up), comes from
+    whole numbers, so rotations that differ by quarter turns (or only in sign of a ±45° rest) share
+    the very same resampling matrix.
+    """
+    quarter_turns = (8 * k + n) // (2 * n)
+    rest = 2 * math.pi * (4 * k - quarter_turns * n) / (4 * n)
+    return kernel_rotation_matrix(size, quarter_turns * math.pi / 2, method) @ kernel_rotation_matrix(size, rest, method)
+
+
+def parse_group(spec: str | Group, resampling: str | None = None) -> Group:
+    """Parse ``"c4"``, ``"D4"``, ``"d1"``, ``"c8:bilinear"`` ... into a :class:`Group` (a Group passes through).
+
+    The filter resampling of approximate groups is the ``resampling`` argument ("harmonic" or
+    "bilinear") when given, else the one named after a colon, else the default "harmonic".
+    ``parse_group(group.spec) == group`` for every group.
+    """
     if isinstance(spec, Group):
-        return spec
+        return spec if resampling is None else replace(spec, resampling=resampling)
     match = _NAME.match(str(spec))
     if not match:
         raise GroupError(
             f"Unknown group {spec!r}",
             fix="write cN for N rotations (c1, c2, c4, c8, ...) or dN for N rotations plus mirror "
-                "images (d1, d2, d4, d8, ...); c2, c4, d1, d2 and d4 act exactly on the pixel grid",
+                "images (d1, d2, d4, d8, ...); c2, c4, d1, d2 and d4 act exactly on the pixel grid, others "
+                f"resample filters, by {' or '.join(METHODS)} (e.g. c8:bilinear; default {METHODS[0]})",
         )
-    letter, number = match.groups()
-    return Group(rotations=int(number), mirror=letter.lower() == "d")
+    letter, number, named = match.groups()
+    return Group(rotations=int(number), mirror=letter.lower() == "d", resampling=resampling or named or METHODS[0])
 
 
 EXACT_GROUPS = ("c1", "c2", "c4", "d1", "d2", "d4")

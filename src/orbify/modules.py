@@ -1,7 +1,8 @@
 """Tied modules: ordinary torch modules whose parameters are tied by the group.
 
 Conv, transposed conv and linear layers stay ``nn.Conv2d`` / ``nn.ConvTranspose2d`` /
-``nn.Linear``; their weight (and bias) get a :class:`~orbify.tying.TiedWeight`
+``nn.Linear``; their weight (and bias) get a :class:`~orbify.tying.TiedWeight` (or, for a spatial
+kernel under an approximate group such as c8, a :class:`~orbify.tying.ResampledWeight`)
 parametrization (``torch.nn.utils.parametrize``), so the module tree, hooks and summaries keep
 working and ``parametrize.cached()`` serves inference. Assigning a full-size weight to a tied
 module stores its orbit average. Batch norm shares its statistics across the slots of an orbit
@@ -18,7 +19,7 @@ from torch.nn.utils import parametrize
 from .errors import WidthError
 from .groups import Group
 from .layouts import Layout, Orbit, Plain
-from .tying import TiedPerOrbit, TiedWeight
+from .tying import TiedPerOrbit, tied_weight
 
 Conv = nn.Conv1d | nn.Conv2d | nn.ConvTranspose2d
 
@@ -65,7 +66,9 @@ def tie_conv(conv: Conv, group: Group, in_layout: Layout, out_layout: Layout, wh
     """Tie ``conv`` in place from ``in_layout`` to ``out_layout``; its current weight is projected.
 
     ``conv`` must already have the channel counts of the layouts. Plain → plain 1×1 convs need no
-    tying and are returned untouched.
+    tying and are returned untouched. Under an approximate group (c8, d8, ...) spatial kernels are
+    tied through filter resampling by ``group.resampling`` (:class:`~orbify.tying.ResampledWeight`);
+    the layer is then equivariant only approximately, but still exactly to quarter turns and the mirror.
     """
     transposed = isinstance(conv, nn.ConvTranspose2d)
     channels_in, channels_out = (conv.in_channels, conv.out_channels)
@@ -77,7 +80,7 @@ def tie_conv(conv: Conv, group: Group, in_layout: Layout, out_layout: Layout, wh
         raise WidthError("Grouped transposed convs are not tied", where=where or None,
                          fix="use groups=1 or keep this layer after an orbit pool")
     fibre = conv_fibre(group, in_layout, out_layout, conv.groups, where)
-    tying = TiedWeight(group, out_layout, fibre, tuple(conv.kernel_size), transposed)
+    tying = tied_weight(group, out_layout, fibre, tuple(conv.kernel_size), transposed)
     if not tying.is_trivial:
         _register(conv, "weight", tying)
     _tie_bias(conv, group, out_layout)
@@ -90,7 +93,7 @@ def tie_linear(linear: nn.Linear, group: Group, in_layout: Layout, out_layout: L
         raise WidthError(f"Linear has {linear.in_features}→{linear.out_features} features but the layouts "
                          f"{in_layout}→{out_layout} need {in_layout.size(group)}→{out_layout.size(group)}",
                          where=where or None, fix="resize the layer to the layout widths before tying it")
-    tying = TiedWeight(group, out_layout, in_layout, ())
+    tying = tied_weight(group, out_layout, in_layout, ())
     if not tying.is_trivial:
         _register(linear, "weight", tying)
     _tie_bias(linear, group, out_layout)
