@@ -132,7 +132,8 @@ def convert_command(
     channels: Optional[int] = typer.Option(None, "--channels", min=1, help="Input channels (default: those of the "
                                            "first conv)."),
     stop_at: Optional[str] = typer.Option(None, "--stop-at", help="Convert only up to this graph node or module "
-                                          "path; its orbits are pooled there and the rest stays plain."),
+                                          "path: its orbits are pooled there, and later layers keep plain "
+                                          "channels (with filters symmetric under the group)."),
     weights: Optional[Path] = WeightsOption,
     trust_pickle: bool = TrustOption,
     force: bool = ForceOption,
