@@ -420,6 +420,7 @@ class Converter:
             return None
         with torch.no_grad():
             tied = layer.new.weight.transpose(0, 1) if layer.transposed else layer.new.weight
+        weight = weight.detach()
         norm = weight.norm()
         return float((weight - tied).norm() / norm) if norm > 0 else 0.0
 
