@@ -5,6 +5,7 @@ import torch
 import torchvision
 from torch import nn
 
+import robust_models
 from orbify.convert import convert
 from orbify.errors import OptionError, TraceError, UnsupportedOpError, WidthError
 from orbify.groups import parse_group
@@ -146,39 +147,17 @@ def test_segmentation_map_head_is_equivariant(group_name):
 
 
 def test_unsupported_op_names_the_node():
-    class Shuffle(nn.Module):
-        def __init__(self):
-            super().__init__()
-            self.conv = nn.Conv2d(3, 16, 3, padding=1)
-            self.fc = nn.Linear(16, 2)
-
-        def forward(self, x):
-            y = self.conv(x)
-            b, c, h, w = y.shape
-            y = y.view(b, 2, c // 2, h, w).transpose(1, 2).reshape(b, c, h, w)  # channel shuffle
-            return self.fc(y.mean((2, 3)))
-
     with pytest.raises(UnsupportedOpError) as info:
-        convert(Shuffle(), "c4", example_input=torch.randn(1, 3, 9, 9))
+        convert(robust_models.Shuffle(), "c4", example_input=torch.randn(1, 3, 9, 9))
     message = str(info.value)
-    assert "graph node 'view'" in message and "test_convert.py" in message and "orbit(" in message
+    assert "graph node 'view'" in message and "robust_models.py" in message and "orbit(" in message
     assert "stop_at" in message
 
 
 def test_untraceable_model_names_the_code():
-    class Branchy(nn.Module):
-        def __init__(self):
-            super().__init__()
-            self.conv = nn.Conv2d(3, 8, 3)
-
-        def forward(self, x):
-            if x.sum() > 0:
-                return self.conv(x)
-            return self.conv(-x)
-
     with pytest.raises(TraceError) as info:
-        convert(Branchy(), "c4", example_input=torch.randn(1, 3, 9, 9))
-    assert "test_convert.py" in str(info.value) and "if x.sum() > 0" in str(info.value)
+        convert(robust_models.Branchy(), "c4", example_input=torch.randn(1, 3, 9, 9))
+    assert "robust_models.py" in str(info.value) and "if y.mean() > 0" in str(info.value)
     assert "leaf" in str(info.value)
 
 
