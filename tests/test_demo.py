@@ -20,21 +20,21 @@ from orbify.example import make_tiles
 TOLERANCE = 1e-5
 
 
-@pytest.fixture(scope="module")
-def demo_run(tmp_path_factory):
-    folder = tmp_path_factory.mktemp("demo")
-    result = CliRunner().invoke(app, ["demo", "--out", str(folder), "--quiet"])
-    return folder, result
-
-
 @pytest.mark.slow
-def test_demo_prints_the_table_and_the_tuned_model_beats_the_original_on_rotated_tiles(demo_run):
-    folder, result = demo_run
+def test_orbify_demo_end_to_end(tmp_path):
+    """One run (the demo is the expensive part, so every check reads the same run)."""
+    result = CliRunner().invoke(app, ["demo", "--out", str(tmp_path), "--quiet"])
     assert result.exit_code == 0, result.output
+    check_the_table(result.output, json.loads((tmp_path / "results.json").read_text()))
+    check_the_files(tmp_path)
+    check_the_exported_program(tmp_path)
+
+
+def check_the_table(output: str, figures: dict) -> None:
+    """The converted and tuned model beats the original on rotated tiles and is invariant."""
     for row in ("accuracy, upright tiles", "accuracy, field tiles", "invariance error", "parameters stored",
                 "MACs per tile", "ms per tile"):
-        assert row in result.output, row
-    figures = json.loads((folder / "results.json").read_text())
+        assert row in output, row
     columns = {column["name"]: column for column in figures["columns"]}
     assert list(columns) == ["original", "converted", "tuned", "exported"]
     original, tuned, exported = columns["original"], columns["tuned"], columns["exported"]
@@ -47,20 +47,14 @@ def test_demo_prints_the_table_and_the_tuned_model_beats_the_original_on_rotated
     assert tuned["params"] < original["params"] and tuned["macs"] == original["macs"]
 
 
-@pytest.mark.slow
-def test_demo_leaves_its_files(demo_run):
-    folder, result = demo_run
-    assert result.exit_code == 0, result.output
+def check_the_files(folder) -> None:
     for name in (*FILES.values(), *PLOTS.values()):
         path = folder / name
         assert path.is_file() and path.stat().st_size > 0, name
 
 
-@pytest.mark.slow
-def test_the_exported_program_is_invariant_under_numpy_rotations(demo_run):
+def check_the_exported_program(folder) -> None:
     """The pt2 file runs without orbify; the group action comes from numpy.rot90 / numpy.flip (check-values.md)."""
-    folder, result = demo_run
-    assert result.exit_code == 0, result.output
     group = json.loads((folder / "results.json").read_text())["group"]
     assert group in ("c4", "d4")
     program = torch.export.load(folder / FILES["exported"]).module()
