@@ -419,10 +419,10 @@ class Converter:
         if self.init == "embed":
             return None
         with torch.no_grad():
-            tied = layer.new.weight.transpose(0, 1) if layer.transposed else layer.new.weight
-        weight = weight.detach()
-        norm = weight.norm()
-        return float((weight - tied).norm() / norm) if norm > 0 else 0.0
+            tied = (layer.new.weight.transpose(0, 1) if layer.transposed else layer.new.weight).detach()
+            weight = weight.detach()
+            norm = weight.norm()
+            return float((weight - tied).norm() / norm) if norm > 0 else 0.0
 
     def _groups(self, step: Step, groups: int, lin: Layout, lout: Layout, notes: list[str]) -> int:
         """The largest divisor of the original group count that keeps whole orbits per group."""

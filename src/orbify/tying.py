@@ -33,8 +33,9 @@ Index tensors are kept per in-fibre (|G|·fibre entries), never one per weight e
   the eigenvectors of S = mean_g (M_g - I)ᵀ(M_g - I) with eigenvalue below 1 (an exactly invariant
   kernel has 0; a kernel of an angular frequency the group does not fix has 2 on average) and
   below :data:`INVARIANT_SPREAD`. Measured under c8, basis size and invariance defect
-  max_g ‖M_g U - U‖₂: harmonic 2 / 0.014 (3×3), 3 / 0.009 (5×5), 5 / 0.058 (7×7); bilinear
-  2 / 0.26, 3 / 0.30, 4 / 0.30 (bilinear rotation blurs, so even radial kernels change under it).
+  max_g ‖M_g U - U‖₂: harmonic 3 / 5 / 7 kernels for 3×3 / 5×5 / 7×7, defect below 1e-12 (the
+  radial kernels: the band-limited turn leaves them as they are); bilinear 2 / 0.26, 3 / 0.30,
+  4 / 0.30 (bilinear rotation blurs, so even radial kernels change under it).
   Such a layer is the least exact part of a converted model: prefer 1×1 convs after an orbit pool.
 
 In every case the elements that turn by whole quarter turns (and the mirror) act exactly, so a tied
