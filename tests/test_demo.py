@@ -35,6 +35,8 @@ def check_the_table(output: str, figures: dict) -> None:
     for row in ("accuracy, upright tiles", "accuracy, field tiles", "invariance error", "parameters stored",
                 "MACs per tile", "ms per tile"):
         assert row in output, row
+    # the demo says which initialisation it used (calibrated: measured better, see orbify.demo.DEMO_INIT)
+    assert figures["init"] == "calibrated" and "init calibrated" in " ".join(output.split())
     columns = {column["name"]: column for column in figures["columns"]}
     assert list(columns) == ["original", "converted", "tuned", "exported"]
     original, tuned, exported = columns["original"], columns["tuned"], columns["exported"]

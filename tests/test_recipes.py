@@ -208,7 +208,7 @@ def test_valid_user_recipe_loads(tmp_path):
 
 @pytest.mark.parametrize("old,new,key_path,allowed", [
     ('budget = "params"', 'budjet = "params"', "convert.budjet", "group, input_size, budget, head, init, match"),
-    ("[tune]", "[tuning]", "tuning", "recipe, convert, recalibrate, tune"),
+    ("[tune]", "[tuning]", "tuning", "recipe, convert, calibrate, recalibrate, tune"),
     ("input_size = 225", 'input_size = "225"', "convert.input_size", "safe"),
     ("epochs = 2", "epochs = true", "tune.epochs", "an integer ≥ 1"),
     ("epochs = 2", "epochs = 2.5", "tune.epochs", "an integer ≥ 1"),

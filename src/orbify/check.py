@@ -30,6 +30,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
+from .approximate import SmoothPattern
 from .data import ImageSet
 from .errors import InputShapeError
 from .groups import Group, parse_group
@@ -56,6 +57,7 @@ class LayerCheck:
     weight_residual_identity: float | None
     equivariance_error: float          # max over the group elements
     element_errors: list[float]        # one per group element, in element order
+    calibration_error: float | None = None   # unexplained variance of a calibrated layer's refit
 
 
 @dataclass
@@ -174,6 +176,7 @@ def check_model(converted: nn.Module, original: nn.Module, plan: ConversionPlan,
         layer_errors, output_errors = _equivariance(converted32, layouts, group, images, batch_size, dense)
         output32 = output_errors
     drift = _drift(original32, converted32, images, labels, batch_size)
+    refits = {layer["name"]: layer["error"] for layer in (plan.calibration or {}).get("layers", [])}
     return CheckReport(
         group=group.name, exact_group=group.exact, elements=[element_name(group, g) for g in range(group.order)],
         budget=plan.budget, head=plan.head, init=plan.init, inputs=described, samples=images.shape[0],
@@ -185,7 +188,7 @@ def check_model(converted: nn.Module, original: nn.Module, plan: ConversionPlan,
         invariance_error=max(output_errors), output_element_errors=output_errors,
         invariance_error_float32=max(output32),
         size=_size_safety(converted, original, images.shape[1], tuple(images.shape[-2:]), safe_size_count),
-        layers=[_layer_check(layer, layer_errors.get(layer.target)) for layer in plan.layers],
+        layers=[_layer_check(layer, layer_errors.get(layer.target), refits.get(layer.name)) for layer in plan.layers],
         roundings=list(plan.roundings), notes=list(plan.notes) + drift.pop("notes"),
         first_layer=_first_layer_filters(converted, original, plan, group), **drift,
     )
@@ -219,11 +222,23 @@ def _inputs(inputs, plan: ConversionPlan, input_size, seed: int) -> tuple[torch.
             raise InputShapeError(f"Check inputs must be images (N, C, H, W), got shape {tuple(inputs.shape)}",
                                   where="check_model(inputs=...)", fix="stack the images into one 4-d tensor")
         return inputs.float(), None, f"{inputs.shape[0]} given images"
-    channels = plan.input_shape[1]
-    h, w = (input_size, input_size) if isinstance(input_size, int) else (input_size or plan.input_shape[-2:])
-    generator = torch.Generator().manual_seed(seed)
-    images = torch.randn(RANDOM_SAMPLES, channels, h, w, generator=generator)
-    return images, None, f"{RANDOM_SAMPLES} random normal images (seed {seed})"
+    size = (input_size, input_size) if isinstance(input_size, int) else tuple(input_size or plan.input_shape[-2:])
+    images, described = random_inputs(parse_group(plan.group), RANDOM_SAMPLES, plan.input_shape[1], size, seed)
+    return images, None, described
+
+
+def random_inputs(group: Group, count: int, channels: int, size: tuple[int, int], seed: int) -> tuple[torch.Tensor, str]:
+    """Seeded random check images and their description.
+
+    Exact groups: standard normal pixels (quarter turns and mirrors move them exactly). Approximate
+    groups: smooth random fields windowed to the central disk (:class:`orbify.approximate.SmoothPattern`),
+    because interpolating white noise by a non-quarter turn does not give the same image turned.
+    """
+    if group.exact:
+        images = torch.randn(count, channels, *size, generator=torch.Generator().manual_seed(seed))
+        return images, f"{count} random normal images (seed {seed})"
+    images = SmoothPattern(count, channels, size, seed=seed).sample()
+    return images, f"{count} smooth random images windowed to the central disk (seed {seed})"
 
 
 def _copy_as(model: nn.Module, dtype: torch.dtype) -> nn.Module:
@@ -309,10 +324,10 @@ def _first_tensor(output) -> torch.Tensor:
                           fix="check a model whose forward returns a tensor (or a tuple/dict holding one)")
 
 
-def _layer_check(layer, errors: list[float] | None) -> LayerCheck:
+def _layer_check(layer, errors: list[float] | None, calibration_error: float | None) -> LayerCheck:
     errors = errors or []
     return LayerCheck(layer.name, layer.target, layer.op, layer.layout_in, layer.layout_out, layer.weight_residual,
-                      layer.weight_residual_identity, max(errors, default=math.nan), errors)
+                      layer.weight_residual_identity, max(errors, default=math.nan), errors, calibration_error)
 
 
 # -- drift -------------------------------------------------------------------------------------------

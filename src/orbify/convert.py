@@ -16,6 +16,8 @@ import torch
 from torch import fx, nn
 from torch.nn.utils import parametrize
 
+from .approximate import approximate_note
+from .calibrate import calibrate_conversion
 from .channels import ChannelMap, budget_source, dense_from_groups, feed, groups_from_dense, rows
 from .errors import InputShapeError, OptionError, OrbifyError, UnsupportedOpError, WidthError
 from .graph import describe, shape, trace
@@ -28,14 +30,18 @@ from .rules import CONVERT_UP_TO, Step, no_tensor, rule_for
 from .transfer import (ChannelClasses, MatchTerm, chooses_channels, is_depthwise, load_weight,
                        match_channels, tied_residual)
 
+#: Images per batch when calibration images come as one tensor.
+CALIBRATION_BATCH = 32
+
 #: Channel matching is on unless ``match=False`` (see DEVELOPERS.md, "Weight transfer", for the measurement).
 MATCH_DEFAULT = True
 
 
 def convert(model: nn.Module, group: str | Group = "d4", budget: str = "channels", head: str = "invariant",
             example_input: torch.Tensor | None = None, *, init: str = "orbit-average", match: bool = MATCH_DEFAULT,
-            carry_weights: bool = True, calibration: Iterable[torch.Tensor] | None = None,
-            stop_at: str | None = None, leaf_types: tuple[type, ...] = ()) -> tuple[fx.GraphModule, ConversionPlan]:
+            carry_weights: bool = True, calibration: torch.Tensor | Iterable[torch.Tensor] | None = None,
+            stop_at: str | None = None, leaf_types: tuple[type, ...] = (),
+            progress: bool = False) -> tuple[fx.GraphModule, ConversionPlan]:
     """Convert a plain model into its tied counterpart under ``group``.
 
     Args:
@@ -46,19 +52,25 @@ def convert(model: nn.Module, group: str | Group = "d4", budget: str = "channels
         head: "invariant" (the output does not change under the group) or "map" (a dense
             output, such as a mask, that moves with the input).
         example_input: a (B, C, H, W) tensor; shapes are propagated with it.
-        init: "orbit-average" (project the pretrained weights) or "embed" (``fields`` budget only:
+        init: "orbit-average" (project the pretrained weights), "embed" (``fields`` budget only:
             slot 0 of every orbit copies the original, and the converted model equals the original
-            averaged over the group).
+            averaged over the group) or "calibrated" (orbit average, then every layer refitted on the
+            ``calibration`` images so that the model keeps the original's behaviour averaged over
+            the group: :func:`orbify.calibrate.calibrate_conversion` with its defaults; the report
+            goes into ``plan.calibration`` and each layer's notes).
         match: with "orbit-average", choose which original channels share an orbit (and in which
             slot) to minimise the weight residual, layer by layer; False keeps the identity order.
             The plan records each layer's residual with the chosen and with the identity assignment.
         carry_weights: False leaves the new layers at their fresh initialisation (no transfer, no
             matching): the structure only, for loading a saved state dict.
-        calibration: batches of unlabeled images (tensors shaped like ``example_input``); the
-            converted model's batch-norm statistics are re-estimated on them (recorded in the plan).
+        calibration: unlabeled images, one (N, C, H, W) tensor or batches of them, prepared like the
+            original's inputs. With ``init="calibrated"`` (where they are required) every layer is
+            refitted on them; otherwise the converted model's batch-norm statistics are re-estimated
+            on them. Recorded in the plan either way.
         stop_at: convert only up to this node (name or module path); its orbit is pooled there and
             everything after it stays plain.
         leaf_types: module classes to keep as single graph nodes when tracing.
+        progress: show a progress bar per layer while calibrating (rich, on stderr).
 
     Returns:
         The converted GraphModule (in the mode of ``model``) and the conversion plan.
@@ -70,6 +82,11 @@ def convert(model: nn.Module, group: str | Group = "d4", budget: str = "channels
     if init == "embed" and budget != "fields":
         raise OptionError("The 'embed' initialisation needs the 'fields' budget", where="option init",
                           fix="use budget='fields' with init='embed', or init='orbit-average'")
+    if init == "calibrated" and carry_weights and calibration is None:
+        raise OptionError("The 'calibrated' initialisation needs calibration images", where="option init",
+                          fix="pass calibration= a few hundred unlabeled images (N, C, H, W) prepared like the "
+                              "original's inputs (orbify.data.read_images reads a folder or an .npz file), "
+                              "or use init='orbit-average'")
     if example_input is None or example_input.dim() != 4:
         got = "none" if example_input is None else f"shape {tuple(example_input.shape)}"
         raise InputShapeError(f"An example input of shape (batch, channels, height, width) is needed, got {got}",
@@ -77,13 +94,21 @@ def convert(model: nn.Module, group: str | Group = "d4", budget: str = "channels
     gm = trace(model, example_input, leaf_types)
     converter = Converter(gm, group, budget, head, init, tuple(example_input.shape), stop_at, match, carry_weights)
     converter.run()
+    if not group.exact:
+        converter.plan.notes.append(approximate_note(group))
     gm.train(model.training)
-    if calibration is not None:
-        _recalibrate(gm, calibration, converter.plan)
+    if calibration is not None and carry_weights:
+        if init == "calibrated":
+            report = calibrate_conversion(gm, converter.plan, model, calibration, progress=progress)
+            converter.plan.calibration = report.to_dict()
+        else:
+            _recalibrate(gm, calibration, converter.plan)
     return gm, converter.plan
 
 
-def _recalibrate(gm: fx.GraphModule, batches: Iterable[torch.Tensor], plan: ConversionPlan) -> None:
+def _recalibrate(gm: fx.GraphModule, batches: torch.Tensor | Iterable[torch.Tensor], plan: ConversionPlan) -> None:
+    if isinstance(batches, torch.Tensor):
+        batches = batches.split(CALIBRATION_BATCH)
     seen = recalibrate_batch_norm(gm, batches)
     norms = sum(isinstance(m, nn.modules.batchnorm._BatchNorm) for m in gm.modules())
     if norms:

@@ -107,7 +107,7 @@ def _read_folder(folder: Path, size: int | None, channels: int, limit: int | Non
     else:
         raise DataError(f"The folder {str(folder)!r} holds no images", where=str(folder),
                         fix=f"add image files ({', '.join(IMAGE_SUFFIXES)}), directly or in one sub-folder per class")
-    files = [files[i] for i in _evenly_spaced(len(files), limit)]
+    files = [files[i] for i in evenly_spaced(len(files), limit)]
     images = [_fit(_decode(f, channels), size, f) for f, _ in files]
     _require_one_size(images, [str(f) for f, _ in files])
     labels = torch.tensor([label for _, label in files]) if classes is not None else None
@@ -149,7 +149,7 @@ def _read_npz(file: Path, size: int | None, channels: int, limit: int | None) ->
     n = images.shape[0]
     labels = _labels(content.get("labels"), n, file)
     classes = [str(c) for c in content["classes"]] if "classes" in content else None
-    keep = _evenly_spaced(n, limit)
+    keep = evenly_spaced(n, limit)
     images = _match_channels(images[keep], channels, file)
     images = torch.stack([_fit(image, size, file) for image in images]) if size is not None else images
     return ImageSet(images.contiguous(), labels[keep] if labels is not None else None, classes)
@@ -203,7 +203,8 @@ def _match_channels(images: torch.Tensor, channels: int, file: Path) -> torch.Te
 
 
 # -- shared ----------------------------------------------------------------------------------------
-def _evenly_spaced(n: int, limit: int | None) -> list[int]:
+def evenly_spaced(n: int, limit: int | None) -> list[int]:
+    """Indices of at most ``limit`` of ``n`` sorted items, evenly spaced, so every class folder contributes."""
     if limit is None or limit >= n:
         return list(range(n))
     return torch.linspace(0, n - 1, limit).round().long().tolist()

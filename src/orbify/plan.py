@@ -10,7 +10,7 @@ from .groups import Group
 
 BUDGETS = ("channels", "params", "fields")
 HEADS = ("invariant", "map")
-INITS = ("orbit-average", "embed")
+INITS = ("orbit-average", "embed", "calibrated")
 
 
 def check_choice(option: str, value: str, allowed: tuple[str, ...]) -> str:
@@ -75,6 +75,7 @@ class ConversionPlan:
     layers: list[LayerPlan] = field(default_factory=list)
     values: dict[str, str] = field(default_factory=dict)   # node name → layout
     notes: list[str] = field(default_factory=list)
+    calibration: dict | None = None   # the CalibrationReport of a "calibrated" conversion, as a dict
 
     def layer(self, name: str) -> LayerPlan:
         for layer in self.layers:

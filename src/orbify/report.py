@@ -84,15 +84,26 @@ def check_sections(report: CheckReport) -> list[tuple[str, tuple[str, ...], list
             ("strided layers that break", ", ".join(size.violations) or "-"),
             ("nearest safe sizes", ", ".join(map(str, size.safe_sizes)) or "-"),
         ]),
-        ("Layers", ("node", "op", "layout in → out", "weight residual", "equivariance error"), [
-            (layer.name, layer.kind, f"{layer.layout_in} → {layer.layout_out}", error(layer.weight_residual),
-             error(layer.equivariance_error)) for layer in report.layers
-        ]),
+        _layer_section(report),
     ]
     notes = report.roundings + report.notes
     if notes:
         sections.append(("Notes", ("note",), [(note,) for note in notes]))
     return sections
+
+
+def _layer_section(report: CheckReport) -> tuple[str, tuple[str, ...], list[tuple[str, ...]]]:
+    """Per layer: residual and equivariance error, plus the refit's unexplained variance for a calibrated model."""
+    calibrated = report.init == "calibrated"
+    header = ("node", "op", "layout in → out", "weight residual", "equivariance error")
+    rows = []
+    for layer in report.layers:
+        row = (layer.name, layer.kind, f"{layer.layout_in} → {layer.layout_out}", error(layer.weight_residual),
+               error(layer.equivariance_error))
+        if calibrated:
+            row += ("-" if layer.calibration_error is None else f"{layer.calibration_error:.4f}",)
+        rows.append(row)
+    return "Layers", header + (("refit error",) if calibrated else ()), rows
 
 
 def check_renderable(report: CheckReport) -> RenderGroup:

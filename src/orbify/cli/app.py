@@ -11,7 +11,7 @@ import typer
 from rich.console import Console
 from typer.core import TyperGroup
 
-from ..errors import OrbifyError
+from ..errors import OptionError, OrbifyError
 
 console = Console()
 errors = Console(stderr=True)
@@ -58,6 +58,17 @@ TrustOption = typer.Option(False, "--trust-pickle", help="Allow loading a whole 
                            "Unpickling runs arbitrary code stored in the file: use it only for files you made yourself "
                            "or fully trust.")
 ForceOption = typer.Option(False, "--force", help="Overwrite the output if it exists.")
+
+
+def parse_floats(text: str | None, option: str) -> list[float] | None:
+    """'0.485,0.456,0.406' → [0.485, 0.456, 0.406]; OptionError naming ``option`` when it is not numbers."""
+    if text is None:
+        return None
+    try:
+        return [float(part) for part in text.split(",")]
+    except ValueError as error:
+        raise OptionError(f"{option} must be comma-separated numbers, got {text!r}", where=f"option {option}",
+                          fix=f"write e.g. {option} 0.485,0.456,0.406") from error
 
 
 def main(argv: Optional[list[str]] = None) -> None:

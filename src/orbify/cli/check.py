@@ -22,7 +22,7 @@ from ..plan import ConversionPlan
 from ..recalibrate import recalibrate_batch_norm
 from ..report import PLOT_FILES, check_markdown, check_renderable, plot_check, write_json, write_text
 from ..saving import is_converted_file, load
-from .app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console, errors
+from .app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console, errors, parse_floats
 from .convert import choose_input_size, input_channels
 from .models import read_model
 
@@ -154,17 +154,6 @@ def is_converted_source(source: str) -> bool:
 
 def _random_inputs(plan: ConversionPlan, count: int) -> torch.Tensor:
     return torch.randn(count, *plan.input_shape[1:], generator=torch.Generator().manual_seed(1))
-
-
-def parse_floats(text: str | None, option: str) -> list[float] | None:
-    """'0.485,0.456,0.406' → [0.485, 0.456, 0.406]; OptionError naming ``option`` when it is not numbers."""
-    if text is None:
-        return None
-    try:
-        return [float(part) for part in text.split(",")]
-    except ValueError as error:
-        raise OptionError(f"{option} must be comma-separated numbers, got {text!r}", where=f"option {option}",
-                          fix=f"write e.g. {option} 0.485,0.456,0.406") from error
 
 
 def refuse_existing(paths: list[Path | None], force: bool) -> None:

@@ -15,17 +15,20 @@ import typer
 from rich.table import Table
 from torch import nn
 
-from ..check import CheckReport, check_model
+from ..approximate import approximate_note
+from ..check import CheckReport, check_model, random_inputs
 from ..convert import MATCH_DEFAULT, convert
+from ..data import read_images
 from ..errors import OptionError, OutputError
 from ..groups import parse_group
 from ..plan import BUDGETS, HEADS, INITS, ConversionPlan, check_choice
 from ..recipes import find_recipe_for, load_recipe, merge_options
+from ..recipes.schema import CALIBRATION_IMAGES
 from ..report import error, ratio, si
 from ..saving import is_converted_file, save
 from ..sizes import SizeChecker
 from ..sources import TORCHVISION_PREFIX
-from .app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console
+from .app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console, parse_floats
 from .models import read_model
 
 IMAGENET_SIZE = 224
@@ -107,7 +110,8 @@ BUDGET_HELP = ("channels: same width, ÷|G| parameters, same MACs; params: ≈ s
 HEAD_HELP = ("invariant: a classifier whose output ignores the group; map: a dense output (mask) that moves "
              "with the input.")
 INIT_HELP = ("orbit-average: project the pretrained weights onto the tied ones; embed (fields budget only): "
-             "start exactly at the original averaged over the group.")
+             "start exactly at the original averaged over the group; calibrated: refit every layer on unlabeled "
+             "images (--calibration) so the model starts close to the original averaged over the group.")
 QUICK_CHECK_IMAGES = 2
 """Random images the command checks the converted output's invariance on (a full check: orbify check)."""
 
@@ -134,6 +138,16 @@ def convert_command(
     stop_at: Optional[str] = typer.Option(None, "--stop-at", help="Convert only up to this graph node or module "
                                           "path: its orbits are pooled there, and later layers keep plain "
                                           "channels (with filters symmetric under the group)."),
+    calibration: Optional[Path] = typer.Option(None, "--calibration", help="Unlabeled images for --init calibrated "
+                                               "(implied when this is given): an image folder or an .npz file with "
+                                               "'images', resized to the input size; a few hundred are enough."),
+    calibration_size: Optional[int] = typer.Option(None, "--calibration-size", min=1, help="Read at most this many "
+                                                   "--calibration images, evenly spaced (default: the recipe's, "
+                                                   f"else {CALIBRATION_IMAGES})."),
+    mean: Optional[str] = typer.Option(None, "--mean", help="Per-channel mean to subtract from the --calibration "
+                                       "images, as the original's inputs were prepared, e.g. 0.485,0.456,0.406."),
+    std: Optional[str] = typer.Option(None, "--std", help="Per-channel std to divide the --calibration images by, "
+                                      "e.g. 0.229,0.224,0.225."),
     weights: Optional[Path] = WeightsOption,
     trust_pickle: bool = TrustOption,
     force: bool = ForceOption,
@@ -154,8 +168,12 @@ def convert_command(
       orbify convert torchvision:resnet18 --weights resnet18.pt --group c4 --input-size 225 -o resnet18-c4.orb
 
       orbify convert mypackage.models:build_net --weights net.pt --budget params --input-size 129 -o net-d4.orb
+
+      orbify convert torchvision:resnet18 --weights resnet18.pt --recipe resnet --calibration photos/ -o resnet18-d4.orb
     """
-    refuse_output(out, force, inputs=[Path(source), weights])
+    refuse_output(out, force, inputs=[Path(source), weights, calibration])
+    if calibration is not None and init is None:
+        init = "calibrated"
     if Path(source).is_file() and is_converted_file(Path(source)):
         raise OptionError(f"{source!r} is already a converted model",
                           fix="check, tune or export it (orbify check/tune/export), or convert its plain original")
@@ -167,6 +185,7 @@ def convert_command(
     else:
         options = {**DEFAULT_OPTIONS, **{key: value for key, value in given.items() if value is not None}}
     check_options(options)
+    check_calibration(options["init"], calibration)
     loaded = read_model(source, weights, trust_pickle)
     original = loaded.module
     channels = channels or input_channels(original)
@@ -180,13 +199,19 @@ def convert_command(
         choice = choose_input_size(original, source, requested=input_size, channels=channels)
     console.print(f"input size {choice.size}: {choice.reason}", highlight=False)
     example = torch.zeros(1, channels, choice.size, choice.size)
-    converted, plan = convert(original, example_input=example, **options)
-    images = torch.randn(QUICK_CHECK_IMAGES, channels, choice.size, choice.size,
-                         generator=torch.Generator().manual_seed(0))
-    report = check_model(converted, original, plan, images)
+    images = None
+    if calibration is not None:
+        limit = calibration_size or (recipe.calibration_images if recipe is not None else CALIBRATION_IMAGES)
+        images = read_images(calibration, size=choice.size, channels=channels, limit=limit,
+                             mean=parse_floats(mean, "--mean"), std=parse_floats(std, "--std")).images
+    converted, plan = convert(original, example_input=example, calibration=images, progress=True, **options)
+    checked, _ = random_inputs(parse_group(plan.group), QUICK_CHECK_IMAGES, channels, (choice.size, choice.size), 0)
+    report = check_model(converted, original, plan, checked)
     path = save(converted, plan, out, reference=loaded.reference, recipe=recipe.name if recipe else None,
                 check=report.to_dict(), force=force)
     console.print(conversion_table(report, plan))
+    if not parse_group(plan.group).exact:
+        console.print(f"note: {approximate_note(parse_group(plan.group))}", highlight=False)
     console.print(f"wrote {path} ({path.stat().st_size:,} bytes). Next: orbify tune {path} --data IMAGES -o TUNED.orb",
                   highlight=False)
 
@@ -202,6 +227,18 @@ def check_options(options: dict) -> None:
     check_choice("budget", options["budget"], BUDGETS)
     check_choice("head", options["head"], HEADS)
     check_choice("init", options["init"], INITS)
+
+
+def check_calibration(init: str, calibration: Path | None) -> None:
+    """--init calibrated needs --calibration, and --calibration is for --init calibrated only."""
+    if init == "calibrated" and calibration is None:
+        raise OptionError("The calibrated initialisation needs unlabeled images", where="option --calibration",
+                          fix="add --calibration IMAGES (a folder or an .npz file; a few hundred images prepared "
+                              "like the original's inputs), or choose --init orbit-average")
+    if init != "calibrated" and calibration is not None:
+        raise OptionError(f"--calibration images are used by the calibrated initialisation, not by {init!r}",
+                          where="option --calibration", fix="leave out --init (or give --init calibrated), or leave "
+                                                            "out --calibration")
 
 
 def suggest_recipe(architecture: str) -> None:
@@ -234,6 +271,20 @@ def conversion_table(report: CheckReport, plan: ConversionPlan) -> Table:
     if residuals:
         worst, name = max(residuals)
         table.add_row("worst weight residual", "", f"{worst:.2f} ({name})")
+    if plan.calibration is not None:
+        calibration = plan.calibration
+        agreement = calibration.get("agreement")
+        table.add_row("calibration", "", f"{calibration['images']} images × {calibration['views']} views, "
+                                         f"{calibration['seconds']:.1f} s")
+        table.add_row("top-1 agreement with the original averaged over the group", "",
+                      "-" if agreement is None else f"{agreement:.3f} (calibration images)")
+        refits = [(layer["error"], layer["target"]) for layer in calibration["layers"] if layer["error"] is not None]
+        if refits:
+            worst_refit, refit_name = max(refits)
+            table.add_row("worst refit (unexplained variance)", "", f"{worst_refit:.4f} ({refit_name})")
+        fallbacks = [layer["target"] for layer in calibration["layers"] if layer["error"] is None]
+        if fallbacks:
+            table.add_row("kept orbit averaging", "", ", ".join(fallbacks))
     table.add_row(f"output {report.output_property} error", "",
                   f"{error(report.invariance_error)} ({report.precision}), "
                   f"{error(report.invariance_error_float32)} (float32)")

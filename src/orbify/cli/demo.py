@@ -45,7 +45,7 @@ def demo(
 def result_table(result: DemoResult) -> Table:
     """The before/after table of a demo run."""
     header, rows = result.table_rows()
-    table = Table(*header, title=f"the bundled example, {result.group}, budget {result.budget}")
+    table = Table(*header, title=f"the bundled example, {result.group}, budget {result.budget}, init {result.init}")
     for row in rows:
         table.add_row(*row)
     return table

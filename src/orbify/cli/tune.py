@@ -17,19 +17,24 @@ from rich.table import Table
 from torch import fx, nn
 
 from ..convert import convert
-from ..data import ImageSet, read_images
+from ..data import ImageSet, evenly_spaced, read_images
 from ..distributed import process_rank
 from ..errors import OptionError
-from ..plan import ConversionPlan
+from ..plan import ConversionPlan, check_choice
+from ..recipes.schema import CALIBRATION_IMAGES
 from ..saving import load, save
 from ..sizes import SizeChecker
 from ..sources import TORCHVISION_PREFIX
 from ..teacher import VIEW_COMBINATIONS
 from ..tune import SCHEDULES, TuneResult, tune
-from .app import ForceOption, TrustOption, app, console
-from .check import is_converted_source, parse_floats
+from .app import ForceOption, TrustOption, app, console, parse_floats
+from .check import is_converted_source
 from .convert import input_channels, refuse_output
 from .models import read_model
+
+
+TUNE_INITS = ("orbit-average", "calibrated")
+"""Initialisations of a SOURCE converted on the fly for tuning (embed needs the fields budget's width)."""
 
 
 @dataclass
@@ -56,6 +61,9 @@ def tune_command(
                                            "weights_only=True); needed for torchvision:NAME originals."),
     group: str = typer.Option("d4", "--group", "-g", help="With a plain SOURCE: the group to convert to."),
     budget: str = typer.Option("channels", "--budget", help="With a plain SOURCE: the conversion budget."),
+    init: str = typer.Option("orbit-average", "--init", help="With a plain SOURCE: orbit-average, or calibrated "
+                             f"(every layer refitted first on up to {CALIBRATION_IMAGES} of the --data images, "
+                             "without their labels, so tuning starts close to the original averaged over the group)."),
     epochs: int = typer.Option(10, "--epochs", min=1, help="Training epochs."),
     lr: float = typer.Option(1e-3, "--lr", help="Peak learning rate (AdamW)."),
     batch_size: int = typer.Option(64, "--batch-size", min=2, help="Images per process per step."),
@@ -100,7 +108,8 @@ def tune_command(
                           fix=f"choose one of: {', '.join(VIEW_COMBINATIONS)}")
     refuse_output(out, force, inputs=[Path(model), weights, data])
     main = process_rank() == 0
-    inputs = read_inputs(model, original, weights, trust_pickle, group, budget, data, input_size, channels,
+    check_choice("init", init, TUNE_INITS)
+    inputs = read_inputs(model, original, weights, trust_pickle, group, budget, init, data, input_size, channels,
                          parse_floats(mean, "--mean"), parse_floats(std, "--std"), limit, quiet=not main)
     labels = inputs.data.labels if use_labels else None
     result = tune(inputs.student, inputs.teacher, inputs.plan.group, inputs.data.images, labels, epochs=epochs, lr=lr,
@@ -117,7 +126,7 @@ def tune_command(
 
 
 def read_inputs(model: str, original: str | None, weights: Path | None, trust_pickle: bool, group: str, budget: str,
-                data: Path, input_size: int | None, channels: int | None, mean: list[float] | None,
+                init: str, data: Path, input_size: int | None, channels: int | None, mean: list[float] | None,
                 std: list[float] | None, limit: int | None, quiet: bool) -> TuneInputs:
     """The student, its plan, the teacher, the reference to save with the result and the images."""
     if is_converted_source(model):
@@ -154,7 +163,9 @@ def read_inputs(model: str, original: str | None, weights: Path | None, trust_pi
         console.print(f"[yellow]warning:[/] the images' size {size} is not safe for this model "
                       f"({checker.violations(size)[0]}), so the converted model is not exactly invariant at it; "
                       f"safe sizes nearby: {nearby or 'none found'} (--input-size)", highlight=False)
-    student, plan = convert(teacher, group, budget, "invariant", images.images[:1])
+    calibration = images.images[evenly_spaced(len(images), CALIBRATION_IMAGES)] if init == "calibrated" else None
+    student, plan = convert(teacher, group, budget, "invariant", images.images[:1], init=init,
+                            calibration=calibration, progress=not quiet)
     return TuneInputs(student, plan, teacher, loaded.reference, images)
 
 

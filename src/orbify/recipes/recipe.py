@@ -20,7 +20,7 @@ class Recipe:
     """How a family of architectures is best converted and tuned, read from one TOML file.
 
     ``name`` is the file name without ``.toml``; ``text`` the file as written (for display).
-    ``settings`` maps each section ("recipe", "convert", "recalibrate", "tune") to its keys,
+    ``settings`` maps each section ("recipe", "convert", "calibrate", "recalibrate", "tune") to its keys,
     defaults filled in (see :mod:`orbify.recipes.schema`).
     """
 
@@ -58,6 +58,11 @@ class Recipe:
     @property
     def input_size(self) -> int:
         return self.settings["convert"]["input_size"]
+
+    @property
+    def calibration_images(self) -> int:
+        """How many of the user's images a calibrated conversion reads."""
+        return self.settings["calibrate"]["images"]
 
     @property
     def recalibrate_batches(self) -> int:

@@ -1,9 +1,10 @@
 """The recipe file format: its sections, keys, types and allowed values, and their validation.
 
-A recipe file is TOML with four sections (see the README, "Recipes"):
+A recipe file is TOML with five sections (see the README, "Recipes"):
 
 ``[recipe]``       ``description`` and the ``architectures`` it applies to;
 ``[convert]``      the options of :func:`orbify.convert` plus the ``input_size`` to convert at;
+``[calibrate]``    how many of the user's images a calibrated conversion (``init = "calibrated"``) uses;
 ``[recalibrate]``  how many batches of the user's images re-estimate batch-norm statistics;
 ``[tune]``         defaults for :func:`orbify.tune.tune`.
 
@@ -105,6 +106,9 @@ def _torchvision_names() -> frozenset[str] | None:
 
 _TUNE = TuneOptions()
 
+#: Calibration images read when neither the command line nor the recipe says (design.md section 7b: a few hundred).
+CALIBRATION_IMAGES = 256
+
 SECTIONS: dict[str, dict[str, Key]] = {
     "recipe": {
         "description": Key(str, "one line saying what the recipe is for"),
@@ -120,6 +124,10 @@ SECTIONS: dict[str, dict[str, Key]] = {
         "init": Key(str, ", ".join(INITS), "orbit-average", _choice(INITS)),
         "match": Key(bool, "true or false", MATCH_DEFAULT),
         "stop_at": Key(str, "a graph node name or module path of the model, e.g. \"layer4\"", None),
+    },
+    "calibrate": {
+        "images": Key(int, "an integer ≥ 1: how many calibration images init = \"calibrated\" reads (evenly spaced)",
+                      CALIBRATION_IMAGES, _at_least(1)),
     },
     "recalibrate": {
         "batches": Key(int, "an integer ≥ 0 (0: keep the converted statistics)", 8, _at_least(0)),
