@@ -151,23 +151,29 @@ class LayerEquations:
         """Accumulate one batch: the converted input, and per slot the original's aligned output (B, C, ...)."""
         u = self.unfold(inputs)
         batch, _, _, positions = u.shape
+        samples = u.permute(1, 2, 0, 3).reshape(self.groups, self.features, batch * positions)   # (groups, f, n)
         if self.gram is None:   # in the model's precision: summing a few batches in float32 loses nothing that matters
             self.gram = torch.zeros(self.groups, self.features, self.features, dtype=u.dtype)
-        self.gram += torch.einsum("bgfl,bghl->gfh", u, u)
-        self.sums += u.sum((0, 3)).double()
+        self.gram.baddbmm_(samples, samples.transpose(1, 2))
+        self.sums += samples.sum(2).double()
         self.count += batch * positions
-        for i, slot in enumerate(self.slots):
+        targets = []
+        for slot in self.slots:
             target = outputs[slot].to(u.dtype).reshape(batch, outputs[slot].shape[1], -1)[:, self.targets]
             if target.shape[-1] != positions:
                 raise NotRefittable(f"the original's output has {target.shape[-1]} positions, the refit {positions}")
-            self.cross[i] += self._cross(u, target, self.row_groups[i]).double()
-            self.target_sums[i] += target.sum((0, 2)).double()
-            self.target_squares[i] += target.square().sum((0, 2)).double()
+            targets.append(target)
+            self.target_sums[len(targets) - 1] += target.sum((0, 2)).double()
+            self.target_squares[len(targets) - 1] += target.square().sum((0, 2)).double()
+        if self.groups == 1:   # every slot's products in one matrix product
+            stacked = torch.cat(targets, 1).permute(1, 0, 2).reshape(-1, batch * positions)
+            self.cross += (stacked @ samples[0].T).reshape(self.cross.shape).double()
+        else:
+            for i, target in enumerate(targets):
+                self.cross[i] += self._cross(u, target, self.row_groups[i]).double()
 
     def _cross(self, u: torch.Tensor, target: torch.Tensor, row_groups: torch.Tensor) -> torch.Tensor:
-        """Σ over batch and positions of features × target, per row (rows, features)."""
-        if self.groups == 1:
-            return torch.einsum("bfl,brl->rf", u[:, 0], target)
+        """Σ over batch and positions of features × target, per row (rows, features), for grouped convs."""
         order = row_groups.argsort(stable=True)
         used, per_group = row_groups[order].unique_consecutive(return_counts=True)
         out = torch.empty(target.shape[1], self.features, dtype=u.dtype)
@@ -235,7 +241,7 @@ class LayerEquations:
                 s = s @ self.actions
             elif self.actions is not None:
                 index = self.actions[view]
-                g, s = g[index[:, None], index[None, :]], s[index]
+                g, s = g.index_select(0, index).index_select(1, index), s[index]
             gram, sums = gram + g, sums + s
         return gram.double(), sums
 

@@ -63,6 +63,22 @@ def importance(node: fx.Node, original: fx.GraphModule) -> torch.Tensor:
     return gain / gain.mean().clamp_min(1e-30)
 
 
+#: Images whose copies the kept-channel choice reads (the first ones): the covariances it needs settle on fewer
+#: images than the refit, and this pass costs |G| forward passes of the original per image.
+SELECTION_IMAGES = 128
+
+
+def _first_images(batches: list[torch.Tensor], count: int) -> list[torch.Tensor]:
+    """The leading batches holding the first ``count`` images (the last one cut to size)."""
+    kept, seen = [], 0
+    for batch in batches:
+        if seen >= count:
+            break
+        kept.append(batch[:count - seen])
+        seen += kept[-1].shape[0]
+    return kept
+
+
 def span_statistics(original: fx.GraphModule, requests: dict[int, SpanRequest], batches: list[torch.Tensor],
                     group: Group, slots: list[int]) -> dict[int, tuple[torch.Tensor, torch.Tensor]]:
     """The covariance of every requested class's orbit features over the calibration images (block row, slot table).
@@ -148,7 +164,8 @@ class ChannelChoice:
                     channels = shape(writers[key][0])[1]
                     weights = sum(_reading(original.get_submodule(n.target), channels) for n in mixing)
                     requests[key] = SpanRequest(str(mixing[0].target), channels, weights, orbits_of(mixing[0]) is None)
-        covariances = span_statistics(original, requests, batches, group, slots) if requests else {}
+        covariances = span_statistics(original, requests, _first_images(batches, SELECTION_IMAGES), group,
+                                      slots) if requests else {}
         for key, nodes in writers.items():
             blocks = self.classes.blocks(nodes[0]) or 1
             if key in covariances:

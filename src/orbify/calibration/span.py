@@ -63,11 +63,13 @@ class OrbitCovariance:
             views = views[pick]
         width = len(self.slots)
         which = (torch.arange(views.shape[0]) + self.samples) % width
+        batch_row = torch.zeros(self.block_row.shape, dtype=views.dtype)   # one batch in the data's precision
         for h in range(width):
             rows = views[which == h]
             if rows.shape[0]:
                 # B[c, c', t] += Σ ã[c, h] ã[c', h·t]
-                self.block_row += torch.einsum("ic,idt->cdt", rows[:, :, h], rows[:, :, self.table[h]]).double()
+                batch_row += torch.einsum("ic,idt->cdt", rows[:, :, h], rows[:, :, self.table[h]])
+        self.block_row += batch_row.double()
         self.sums += views.sum((0, 2)).double()
         self.count += views.shape[0] * width
         self.samples += views.shape[0]
