@@ -331,7 +331,7 @@ class _Calibration:
         std = (norm.running_var.double() + norm.eps).sqrt()
         shift = folded if folded is not None else torch.zeros_like(mean)
         if not self.refit_norms:
-            norm.running_mean.copy_(mean - shift)
+            self._own_statistics(norm, solution, mean - shift, std, shift)
             return
         fitted_var = (solution.fitted_square - solution.fitted_mean.square()).clamp_min(0)
         target_var = (solution.target_square - solution.target_mean.square()).clamp_min(0)
@@ -341,6 +341,29 @@ class _Calibration:
         new_mean = solution.fitted_mean - shift - (solution.target_mean - mean) * ratio
         norm.running_mean.copy_(new_mean)
         norm.running_var.copy_((new_std.square() - norm.eps).clamp_min(0))
+
+    @staticmethod
+    def _own_statistics(norm: nn.Module, solution: Solution, centre: torch.Tensor, std: torch.Tensor,
+                        shift: torch.Tensor) -> None:
+        """Running statistics set to the refitted output's own moments, the affine compensating.
+
+        In eval mode the norm must compute γ·(z − centre)/std + β. With the statistics of z itself
+        (mean m, variance v over the calibration images and copies) and γ' = γ·√(v + ε)/std,
+        β' = β + γ·(m − centre)/std it computes exactly that, and training mode, which normalises
+        by the batch's own statistics, starts where eval mode is instead of jumping away.
+        Without affine parameters only the centre is set.
+        """
+        if not norm.affine or parametrize.is_parametrized(norm):
+            norm.running_mean.copy_(centre)
+            return
+        own_mean = solution.fitted_mean - shift
+        own_var = (solution.fitted_square - solution.fitted_mean.square()).clamp_min(0)
+        own_std = (own_var + norm.eps).sqrt()
+        gamma, beta = norm.weight.detach().double(), norm.bias.detach().double()
+        norm.weight.copy_(gamma * own_std / std)
+        norm.bias.copy_(beta + gamma * (own_mean - centre) / std)
+        norm.running_mean.copy_(own_mean)
+        norm.running_var.copy_(own_var)
 
     def _fall_back(self, node: fx.Node, why: str) -> None:
         """The orbit average of the original weight under the kept channels."""
