@@ -11,6 +11,7 @@ resnet18 definition.
 from __future__ import annotations
 
 import copy
+import json
 import math
 
 import numpy as np
@@ -25,6 +26,7 @@ from orbify.approximate import SmoothPattern, approximate_errors, approximate_no
 from orbify.bake import bake_model
 from orbify.convert import convert
 from orbify.errors import GroupError, UnsupportedOpError
+from orbify.example import load_example_model, make_tiles
 from orbify.groups import Group, parse_group
 from orbify.layouts import Flat, Orbit, Plain, act
 from orbify.modules import bake, tie_conv, tie_linear
@@ -359,3 +361,72 @@ def test_partial_conversion_and_map_head_under_c8():
     assert {m.form for m in converted.modules() if isinstance(m, ResampledWeight)} == {"orbit-out", "orbit-in"}
     worst = worst_errors(approximate_errors(converted.double(), group, SmoothPattern(2, 3, 17, seed=4)))["output"]
     assert worst[0] <= TOL
+
+
+# --- the whole job under an approximate group, through the command line -------------------------------------------
+def test_c8_and_d8_go_through_convert_check_tune_and_export(tmp_path):
+    """c8 like c4: convert (the approximation stated), check (disk-masked per-layer errors), tune, export (pt2).
+
+    The exported program must keep the quarter turns exact (torch.rot90 as the reference move), and
+    on smooth inputs sampled turned (not interpolated) its 45° invariance error must stay well below
+    the plain original's on the same inputs (measured: 0.23 after one epoch of tuning, against 0.54).
+    """
+    from typer.testing import CliRunner
+
+    from orbify.cli import app
+
+    def invoke(*args):
+        result = CliRunner().invoke(app, [str(a) for a in args])
+        assert result.exit_code == 0, result.output
+        return " ".join(result.output.split())
+
+    converted = tmp_path / "c8.orb"
+    output = invoke("convert", "example", "--group", "c8", "-o", converted)
+    assert "c8 is an approximate group" in output and "exactly equivariant to its quarter turns" in output
+    report = tmp_path / "check.json"
+    invoke("check", converted, "--original", "example", "--json", report)
+    figures = json.loads(report.read_text())
+    assert figures["exact_group"] is False
+    assert any("approximate group" in note for note in figures["notes"])
+    quarter_turns = [e for name, e in zip(figures["elements"], figures["output_element_errors"])
+                     if name in ("rot90", "rot180", "rot270")]
+    assert len(quarter_turns) == 3 and max(quarter_turns) <= 1e-5
+    assert all(layer["equivariance_error"] < 1.0 for layer in figures["layers"])
+    images, labels = make_tiles(64, split="any", size=33, seed=44)
+    data = tmp_path / "tiles.npz"
+    np.savez(data, images=images.numpy(), labels=labels.numpy())
+    tuned = tmp_path / "d8-tuned.orb"
+    invoke("tune", "example", "--group", "d8", "--data", data, "--epochs", 1, "--batch-size", 32, "-o", tuned)
+    program_path = tmp_path / "d8.pt2"
+    invoke("export", tuned, "--format", "pt2", "-o", program_path)
+    program = torch.export.load(program_path).module()
+    pattern = SmoothPattern(4, 3, 33, seed=5)
+    upright = pattern.sample()
+    with torch.no_grad():
+        logits = program(upright)
+        for turns in (1, 2, 3):
+            assert relative(program(torch.rot90(upright, turns, (-2, -1))), logits) <= 1e-5
+        eighth = relative(program(pattern.sample(math.pi / 4)), logits)
+        original = load_example_model().eval()
+        plain = relative(original(pattern.sample(math.pi / 4)), original(upright))
+    assert eighth < 0.6 * plain, (eighth, plain)
+
+
+def relative(value: torch.Tensor, reference: torch.Tensor) -> float:
+    return float((value - reference).norm() / reference.norm())
+
+
+def test_a_recipe_can_ask_for_c16(tmp_path):
+    from orbify.recipes import load_recipe, merge_options
+
+    text = load_recipe("example").path.read_text().replace('group = "d4"', 'group = "c16"')
+    path = tmp_path / "c16.toml"
+    path.write_text(text)
+    options = merge_options(load_recipe(path), {})
+    size = options.pop("input_size")
+    converted, plan = convert(load_example_model(), example_input=torch.zeros(1, 3, size, size), **options)
+    assert plan.group == "c16" and any("approximate group" in note for note in plan.notes)
+    x = SmoothPattern(2, 3, size, seed=6).sample()
+    with torch.no_grad():
+        y = converted.eval()(x)
+        assert relative(converted(torch.rot90(x, 1, (-2, -1))), y) <= 1e-5
