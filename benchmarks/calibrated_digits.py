@@ -80,7 +80,7 @@ class Settings:
     learning_rates: tuple[float, ...]
 
 
-FULL = Settings(seeds=(0, 1, 2), original_epochs=30, tune_epochs=15, learning_rates=(1e-3, 3e-3, 1e-2))
+FULL = Settings(seeds=(0, 1, 2), original_epochs=30, tune_epochs=15, learning_rates=(3e-4, 1e-3, 3e-3, 1e-2))
 QUICK = Settings(seeds=(0,), original_epochs=4, tune_epochs=2, learning_rates=(3e-3,))
 
 

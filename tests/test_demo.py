@@ -2,7 +2,7 @@
 
 The converted and tuned model must beat the original on rotated inputs (the field tiles, and the
 upright tiles moved by every group element) with an invariance error of at most 1e-5, and the exported
-program must behave the same. The run took 19 s on an idle two-core machine (the README says how
+program must behave the same. The run took 31 s on an idle two-core machine (the README says how
 that was measured; timing targets are not asserted in tests).
 """
 
