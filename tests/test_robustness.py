@@ -124,9 +124,9 @@ def test_pickled_model_needs_trust(tmp_path):
     assert_refused(code, out, "--trust-pickle")
     assert sha256_file(pickled) == before and not (tmp_path / "x.orb").exists()
     code, out = run("convert", pickled, "--trust-pickle", "--input-size", "9", "-g", "c4", "-o", tmp_path / "x.orb")
-    # with trust it loads; a pickled model has no source reference to rebuild from, so saving it as a
-    # converted file is refused with its own explanation (and still writes nothing)
-    assert_refused(code, out, "no source reference")
+    # with trust it loads, but a pickled model names no architecture a converted file could rebuild,
+    # so the conversion is refused before it starts, saying how to give the model instead
+    assert_refused(code, out, "is a pickled whole model", "package.module:factory")
     assert not (tmp_path / "x.orb").exists()
 
 

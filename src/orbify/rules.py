@@ -64,7 +64,7 @@ def elementwise(step: Step) -> Layout | None:
     layouts = [layout for _, layout in tensors if layout is not None]
     if not layouts:
         return None
-    varying = [l for (arg, l) in tensors if l is not None and not _broadcast_channel(arg)]
+    varying = [l for (arg, l) in tensors if l is not None and not broadcasts_channel(arg)]
     if not varying:
         return layouts[0]
     first = varying[0]
@@ -74,7 +74,8 @@ def elementwise(step: Step) -> Layout | None:
     return first
 
 
-def _broadcast_channel(node: fx.Node) -> bool:
+def broadcasts_channel(node: fx.Node) -> bool:
+    """True when ``node``'s value has one channel (or none) and so broadcasts over every channel."""
     s = shape(node)
     return s is not None and (len(s) < 2 or s[1] == 1)
 

@@ -30,7 +30,7 @@ from torch import fx, nn
 from torch.nn.utils import parametrize
 
 from .graph import shape
-from .rules import _broadcast_channel, elementwise, rule_for
+from .rules import broadcasts_channel, elementwise, rule_for
 
 LAYER_TYPES = (nn.Conv2d, nn.ConvTranspose2d, nn.Linear)
 
@@ -258,7 +258,7 @@ class ChannelClasses:
             self._parts[cid] = [self._of[a] for a in node.args[0] if a in self._of]
         elif rule_for(node, module) is elementwise:
             full = [self._of[a] for a in node.args if isinstance(a, fx.Node) and a in self._of
-                    and shape(a) is not None and not _broadcast_channel(a)]
+                    and shape(a) is not None and not broadcasts_channel(a)]
             cid = full[0] if full else (inputs[0] if inputs else self._new(frozen=True))
             for other in full[1:]:
                 cid = self._union(cid, other)

@@ -187,6 +187,12 @@ def convert_command(
     check_options(options)
     check_calibration(options["init"], calibration)
     loaded = read_model(source, weights, trust_pickle)
+    if loaded.reference is None:
+        raise OptionError(f"{source!r} is a pickled whole model: a converted-model file must name an architecture "
+                          "it can rebuild, and a pickle names none", where="SOURCE",
+                          fix="give the architecture as torchvision:NAME or package.module:factory with --weights "
+                              "(save the state dict with torch.save(model.state_dict(), path)), or convert in Python "
+                          "with orbify.convert and keep the result with torch.save")
     original = loaded.module
     channels = channels or input_channels(original)
     if recipe is not None:
