@@ -19,7 +19,14 @@ random element). Calibration uses the first 512 training images, without labels.
    tuner's defaults otherwise) at three learning rates: accuracy on every orientation after every
    epoch. The claim: calibrated reaches test-time averaging (TTA) within 0.5 points in no more
    epochs than orbit averaging needs to get within 2 points (each at its best learning rate).
-3. **Backbones** (``--backbones``): resnet18 and mobilenet_v2 (random weights, batch-norm
+3. **Epoch budgets.** Reading accuracy off one long run flatters nobody: after epoch 6 of a
+   15-epoch cosine schedule the learning rate is still high. A practitioner chooses the number of
+   epochs and the schedule anneals over it, so this part runs :func:`orbify.tune.tune` once per
+   budget E (cosine over E epochs) and learning rate, for every seed of the original, and reports
+   the final accuracy on every element minus TTA, averaged over the seeds. The claim, read here:
+   the smallest budget at which calibrated ends within 0.5 points of TTA is no larger than the
+   smallest at which orbit averaging ends within 2 points (best learning rate at each budget).
+4. **Backbones** (``--backbones``): resnet18 and mobilenet_v2 (random weights, batch-norm
    statistics set on random images) calibrated under d4 on 256 random images of 65×65: wall and
    CPU time, peak memory (resident set of a fresh process), agreement, invariance in float64.
    The target: under a minute and within a 2-core, 24 GB machine.
@@ -78,10 +85,15 @@ class Settings:
     original_epochs: int
     tune_epochs: int
     learning_rates: tuple[float, ...]
+    budgets: tuple[int, ...]
+    budget_learning_rates: tuple[float, ...]
 
 
-FULL = Settings(seeds=(0, 1, 2), original_epochs=30, tune_epochs=15, learning_rates=(3e-4, 1e-3, 3e-3, 1e-2))
-QUICK = Settings(seeds=(0,), original_epochs=4, tune_epochs=2, learning_rates=(3e-3,))
+FULL = Settings(seeds=(0, 1, 2), original_epochs=30, tune_epochs=15, learning_rates=(3e-4, 1e-3, 3e-3, 1e-2),
+                budgets=(1, 2, 3, 4, 6, 8), budget_learning_rates=(1e-3, 3e-3, 1e-2))
+QUICK = Settings(seeds=(0,), original_epochs=4, tune_epochs=2, learning_rates=(3e-3,), budgets=(1,),
+                 budget_learning_rates=(3e-3,))
+PARTS = ("before", "curves", "budgets")
 
 
 def logit_average_top(original: nn.Module, group: Group, images: torch.Tensor) -> torch.Tensor:
@@ -99,11 +111,22 @@ def converted(original: nn.Module, group: Group, splits: DigitSplits, options: d
     return model.eval(), time.perf_counter() - started
 
 
-def before_tuning(group: Group, splits: DigitSplits, settings: Settings) -> list[dict]:
+def original_for(group: Group, splits: DigitSplits, settings: Settings, seed: int, width: int) -> nn.Module:
+    harness.progress(f"{group.name}, seed {seed}: training the original (width {width})")
+    return train_digits_cnn(splits, epochs=settings.original_epochs, seed=seed, augment_group=group, width=width)
+
+
+def tune_quietly(model: nn.Module, original: nn.Module, group: Group, splits: DigitSplits, epochs: int, lr: float,
+                 on_epoch_end=None) -> None:
+    """The tuning every part uses: cosine over ``epochs``, probability-average teacher, no labels, seed 0."""
+    tune(model, original, group, splits.train_images, epochs=epochs, lr=lr, schedule="cosine",
+         view_combination="probability", seed=0, progress=False, distributed=False, on_epoch_end=on_epoch_end)
+
+
+def before_tuning(group: Group, splits: DigitSplits, settings: Settings, width: int) -> list[dict]:
     rows = []
     for seed in settings.seeds:
-        harness.progress(f"{group.name}, seed {seed}: training the original")
-        original = train_digits_cnn(splits, epochs=settings.original_epochs, seed=seed, augment_group=group)
+        original = original_for(group, splits, settings, seed, width)
         top = logit_average_top(original, group, splits.test_images)
         tta = accuracy_every_element(GroupAveraged(original, group, "logit").eval(), group, splits.test_images,
                                      splits.test_labels)
@@ -135,9 +158,9 @@ def print_before(rows: list[dict]) -> None:
                               f"{harness.verdict(min(r['agreement'] for r in default), 0.5, at_most=False)}")
 
 
-def tuning_curves(group: Group, splits: DigitSplits, settings: Settings) -> tuple[dict, float]:
+def tuning_curves(group: Group, splits: DigitSplits, settings: Settings, width: int) -> tuple[dict, float]:
     """Accuracy on every element after each epoch, per (start, learning rate); and the TTA accuracy."""
-    original = train_digits_cnn(splits, epochs=settings.original_epochs, seed=settings.seeds[0], augment_group=group)
+    original = original_for(group, splits, settings, settings.seeds[0], width)
     tta = accuracy_every_element(GroupAveraged(original, group, "probability").eval(), group, splits.test_images,
                                  splits.test_labels)
     curves = {}
@@ -151,9 +174,7 @@ def tuning_curves(group: Group, splits: DigitSplits, settings: Settings) -> tupl
                 model.eval()
                 accuracies.append(accuracy_every_element(model, group, splits.test_images, splits.test_labels))
 
-            tune(model, original, group, splits.train_images, epochs=settings.tune_epochs, lr=lr,
-                 schedule="cosine", view_combination="probability", seed=0, progress=False, distributed=False,
-                 on_epoch_end=evaluate)
+            tune_quietly(model, original, group, splits, settings.tune_epochs, lr, on_epoch_end=evaluate)
             curves[(start, lr)] = accuracies
     return curves, tta
 
@@ -182,6 +203,61 @@ def print_tuning(group: str, curves: dict, tta: float) -> dict:
                           f"2 pt after {averaged} epochs (best learning rate each): {'met' if met else 'NOT met'}")
     return dict(group=group, tta=tta, calibrated_epochs=calibrated, orbit_average_epochs=averaged, met=met,
                 curves={f"{start} lr {lr:g}": a for (start, lr), a in curves.items()})
+
+
+def epoch_budgets(group: Group, splits: DigitSplits, settings: Settings, width: int) -> dict:
+    """Final accuracy on every element minus TTA (points), per (start, budget, lr), one value per seed.
+
+    Budget 0 is the converted model before tuning (one value per seed, learning rate 0)."""
+    gaps: dict[tuple[str, int, float], list[float]] = {}
+    for seed in settings.seeds:
+        original = original_for(group, splits, settings, seed, width)
+        tta = accuracy_every_element(GroupAveraged(original, group, "probability").eval(), group, splits.test_images,
+                                     splits.test_labels)
+        for start, options in (("orbit average", None), ("calibrated", {})):
+            runs = [(0, 0.0)] + [(e, lr) for e in settings.budgets for lr in settings.budget_learning_rates]
+            for epochs, lr in runs:
+                harness.progress(f"{group.name}, seed {seed}: {start}, {epochs} epochs at lr {lr:g}")
+                model, _ = converted(original, group, splits, options)
+                if epochs:
+                    tune_quietly(model, original, group, splits, epochs, lr)
+                accuracy = accuracy_every_element(model, group, splits.test_images, splits.test_labels)
+                gaps.setdefault((start, epochs, lr), []).append(100 * (accuracy - tta))
+    return gaps
+
+
+def print_budgets(group: str, gaps: dict, settings: Settings, width: int) -> dict:
+    table = harness.markdown_table("start", "lr", "before tuning", *[f"{e} epochs" for e in settings.budgets])
+    for start in ("orbit average", "calibrated"):
+        before = _spread(gaps[(start, 0, 0.0)])
+        for lr in settings.budget_learning_rates:
+            table.add_row(start, f"{lr:g}", before, *[_spread(gaps[(start, e, lr)]) for e in settings.budgets])
+    harness.console.print(f"\n### {group}, width {width}: accuracy on every element minus TTA after a tuning run "
+                          f"of E epochs (points; mean over seeds {settings.seeds}, the seeds in brackets)\n")
+    harness.console.print(table)
+
+    def smallest(start: str, gap: float) -> int | None:
+        budgets = (0,) + settings.budgets
+        return next((e for e in budgets if max(_mean_of(gaps[(start, e, lr)]) for lr in
+                                               ((0.0,) if e == 0 else settings.budget_learning_rates)) >= -gap), None)
+
+    calibrated, averaged = smallest("calibrated", 0.5), smallest("orbit average", 2.0)
+    met = calibrated is not None and (averaged is None or calibrated <= averaged)
+    harness.console.print(f"- smallest budget: calibrated within 0.5 pt of TTA {calibrated}, orbit averaging within "
+                          f"2 pt {averaged}; calibrated within 2 pt {smallest('calibrated', 2.0)}, orbit averaging "
+                          f"within 0.5 pt {smallest('orbit average', 0.5)} (mean over seeds, best lr): "
+                          f"{'met' if met else 'NOT met'}")
+    return dict(group=group, width=width, calibrated_budget=calibrated, orbit_average_budget=averaged, met=met,
+                gaps={f"{start} {e} epochs lr {lr:g}": v for (start, e, lr), v in gaps.items()})
+
+
+def _mean_of(values: list[float]) -> float:
+    return sum(values) / len(values)
+
+
+def _spread(values: list[float]) -> str:
+    mean = f"{_mean_of(values):.1f}"
+    return mean if len(values) == 1 else f"{mean} ({' '.join(f'{v:.1f}' for v in values)})"
 
 
 # -- backbones ---------------------------------------------------------------------------------------
@@ -232,6 +308,8 @@ def _mean(rows: list[dict], key: str) -> float:
 def main(
     quick: bool = typer.Option(False, "--quick", help="Smoke run: one seed, 4 training epochs, 2 tuning epochs."),
     groups: str = typer.Option("c4,d4", "--groups", help="Comma-separated groups."),
+    width: int = typer.Option(32, "--width", help="Channels of the digits CNN (orbits per layer: width ÷ |G|)."),
+    parts: str = typer.Option(",".join(PARTS), "--parts", help=f"Comma-separated parts to run, of {', '.join(PARTS)}."),
     with_backbones: bool = typer.Option(False, "--backbones", help="Also time resnet18 and mobilenet_v2."),
     threads: int = typer.Option(harness.THREADS, "--threads", help="torch intra-op threads."),
     images: int = typer.Option(256, "--images", help="Calibration images for the backbones."),
@@ -249,23 +327,34 @@ def main(
     harness.print_header("Calibrated conversion: digits before and after tuning", {
         "data": "scikit-learn load_digits, 9×9 (zero-padded), 70/30 split, seed 0",
         "6/9 ambiguity": SIX_NINE_POLICY,
-        "original": f"3 conv-bn-relu blocks, width 32, trained with rotation augmentation by the group, "
+        "original": f"3 conv-bn-relu blocks, width {width}, trained with rotation augmentation by the group, "
                     f"{settings.original_epochs} epochs, seeds {settings.seeds}",
         "conversion": "channels budget; orbit averaging with channel matching, or calibrated on the first "
                       f"{CALIBRATION_IMAGES} training images (no labels)",
         "agreement": "test split: top-1 of the converted model = top-1 of the original's logits averaged over the group",
         "tuning": f"orbify.tune, {settings.tune_epochs} epochs, cosine, lr {settings.learning_rates}, probability-"
                   "average teacher, no labels, batch-norm recalibration first (the tuner's default), seed 0",
+        "epoch budgets": f"one cosine run per budget {settings.budgets} and lr {settings.budget_learning_rates}, "
+                         f"every seed of the original",
     })
+    chosen = [part.strip() for part in parts.split(",") if part.strip()]
+    unknown = sorted(set(chosen) - set(PARTS))
+    if unknown:
+        raise typer.BadParameter(f"unknown parts {unknown}; choose from {', '.join(PARTS)}", param_hint="--parts")
     splits = load_digit_splits(seed=0)
-    results: dict = {"before": [], "tuning": [], "backbones": []}
+    results: dict = {"before": [], "tuning": [], "budgets": [], "backbones": []}
     for name in groups.split(","):
         group = parse_group(name.strip())
-        rows = before_tuning(group, splits, settings)
-        print_before(rows)
-        results["before"] += rows
-        curves, tta = tuning_curves(group, splits, settings)
-        results["tuning"].append(print_tuning(group.name, curves, tta))
+        if "before" in chosen:
+            rows = before_tuning(group, splits, settings, width)
+            print_before(rows)
+            results["before"] += rows
+        if "curves" in chosen:
+            curves, tta = tuning_curves(group, splits, settings, width)
+            results["tuning"].append(print_tuning(group.name, curves, tta))
+        if "budgets" in chosen:
+            results["budgets"].append(print_budgets(group.name, epoch_budgets(group, splits, settings, width),
+                                                    settings, width))
     if with_backbones:
         results["backbones"] = backbones(threads, images, size)
     if json_path is not None:

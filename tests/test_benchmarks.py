@@ -98,3 +98,21 @@ def test_conversion_quick():
         assert wall > 0 and cpu > 0
         assert before > 0 and rise >= 0
         assert peak == pytest.approx(rise + before, abs=2)
+
+
+def test_finer_rotations_quick():
+    output = run_quick("finer_rotations.py")
+    variants = {row[1] for row in rows(output, "resnet18, random weights")}
+    assert {"plain", "c8 harmonic", "c8 bilinear"} <= variants
+    for row in rows(output, "resnet18, random weights"):
+        if row[1].startswith("c8") and len(row) == 6:
+            assert float(row[5]) <= 1e-5   # quarter turns stay exact inside c8 (float64)
+
+
+def test_calibrated_digits_quick():
+    output = run_quick("calibrated_digits.py")
+    default = rows(output, "calibrated (the defaults)")
+    assert len(default) == 2   # c4 and d4, before tuning
+    budget_rows = rows(output, "calibrated")
+    assert any(len(row) == 4 for row in budget_rows)   # start, lr, before tuning, the one budget
+    assert "smallest budget" in output
