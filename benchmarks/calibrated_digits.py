@@ -42,6 +42,7 @@ import harness  # first: it sets the OpenMP wait policy before torch loads
 
 import json  # noqa: E402
 import resource  # noqa: E402
+import statistics  # noqa: E402
 import subprocess  # noqa: E402
 import sys  # noqa: E402
 import time  # noqa: E402
@@ -116,6 +117,12 @@ def original_for(group: Group, splits: DigitSplits, settings: Settings, seed: in
     return train_digits_cnn(splits, epochs=settings.original_epochs, seed=seed, augment_group=group, width=width)
 
 
+def probability_tta(original: nn.Module, group: Group, splits: DigitSplits) -> float:
+    """Test accuracy on every element of the original averaged over the group (probabilities, the teacher's rule)."""
+    return accuracy_every_element(GroupAveraged(original, group, "probability").eval(), group, splits.test_images,
+                                  splits.test_labels)
+
+
 def tune_quietly(model: nn.Module, original: nn.Module, group: Group, splits: DigitSplits, epochs: int, lr: float,
                  on_epoch_end=None) -> None:
     """The tuning every part uses: cosine over ``epochs``, probability-average teacher, no labels, seed 0."""
@@ -161,8 +168,7 @@ def print_before(rows: list[dict]) -> None:
 def tuning_curves(group: Group, splits: DigitSplits, settings: Settings, width: int) -> tuple[dict, float]:
     """Accuracy on every element after each epoch, per (start, learning rate); and the TTA accuracy."""
     original = original_for(group, splits, settings, settings.seeds[0], width)
-    tta = accuracy_every_element(GroupAveraged(original, group, "probability").eval(), group, splits.test_images,
-                                 splits.test_labels)
+    tta = probability_tta(original, group, splits)
     curves = {}
     for start, options in (("orbit average", None), ("calibrated", {})):
         for lr in settings.learning_rates:
@@ -210,12 +216,11 @@ def epoch_budgets(group: Group, splits: DigitSplits, settings: Settings, width: 
 
     Budget 0 is the converted model before tuning (one value per seed, learning rate 0)."""
     gaps: dict[tuple[str, int, float], list[float]] = {}
+    runs = [(0, 0.0)] + [(e, lr) for e in settings.budgets for lr in settings.budget_learning_rates]
     for seed in settings.seeds:
         original = original_for(group, splits, settings, seed, width)
-        tta = accuracy_every_element(GroupAveraged(original, group, "probability").eval(), group, splits.test_images,
-                                     splits.test_labels)
+        tta = probability_tta(original, group, splits)
         for start, options in (("orbit average", None), ("calibrated", {})):
-            runs = [(0, 0.0)] + [(e, lr) for e in settings.budgets for lr in settings.budget_learning_rates]
             for epochs, lr in runs:
                 harness.progress(f"{group.name}, seed {seed}: {start}, {epochs} epochs at lr {lr:g}")
                 model, _ = converted(original, group, splits, options)
@@ -236,10 +241,12 @@ def print_budgets(group: str, gaps: dict, settings: Settings, width: int) -> dic
                           f"of E epochs (points; mean over seeds {settings.seeds}, the seeds in brackets)\n")
     harness.console.print(table)
 
+    def best(start: str, epochs: int) -> float:
+        """The mean gap at the best learning rate for this budget (budget 0: before tuning)."""
+        return max(statistics.fmean(gaps[key]) for key in gaps if key[:2] == (start, epochs))
+
     def smallest(start: str, gap: float) -> int | None:
-        budgets = (0,) + settings.budgets
-        return next((e for e in budgets if max(_mean_of(gaps[(start, e, lr)]) for lr in
-                                               ((0.0,) if e == 0 else settings.budget_learning_rates)) >= -gap), None)
+        return next((e for e in (0,) + settings.budgets if best(start, e) >= -gap), None)
 
     calibrated, averaged = smallest("calibrated", 0.5), smallest("orbit average", 2.0)
     met = calibrated is not None and (averaged is None or calibrated <= averaged)
@@ -251,12 +258,8 @@ def print_budgets(group: str, gaps: dict, settings: Settings, width: int) -> dic
                 gaps={f"{start} {e} epochs lr {lr:g}": v for (start, e, lr), v in gaps.items()})
 
 
-def _mean_of(values: list[float]) -> float:
-    return sum(values) / len(values)
-
-
 def _spread(values: list[float]) -> str:
-    mean = f"{_mean_of(values):.1f}"
+    mean = f"{statistics.fmean(values):.1f}"
     return mean if len(values) == 1 else f"{mean} ({' '.join(f'{v:.1f}' for v in values)})"
 
 

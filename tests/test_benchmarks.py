@@ -104,15 +104,18 @@ def test_finer_rotations_quick():
     output = run_quick("finer_rotations.py")
     variants = {row[1] for row in rows(output, "resnet18, random weights")}
     assert {"plain", "c8 harmonic", "c8 bilinear"} <= variants
-    for row in rows(output, "resnet18, random weights"):
-        if row[1].startswith("c8") and len(row) == 6:
-            assert float(row[5]) <= 1e-5   # quarter turns stay exact inside c8 (float64)
+    converted = [row for row in rows(output, "resnet18, random weights") if row[1].startswith("c8") and len(row) == 6]
+    assert len(converted) == 4   # harmonic and bilinear, smooth fields and photographs
+    assert all(float(row[5]) <= 1e-5 for row in converted)   # quarter turns stay exact inside c8 (float64)
+    paired = [row for row in rows(output, "resnet18, random weights") if row[2].endswith(" of 4")]
+    assert len(paired) == 2   # one paired count per kind of input, out of the 4 quick inputs
 
 
 def test_calibrated_digits_quick():
     output = run_quick("calibrated_digits.py")
     default = rows(output, "calibrated (the defaults)")
     assert len(default) == 2   # c4 and d4, before tuning
-    budget_rows = rows(output, "calibrated")
-    assert any(len(row) == 4 for row in budget_rows)   # start, lr, before tuning, the one budget
+    budget_rows = [row for row in rows(output, "calibrated") if len(row) == 4]   # start, lr, before, one budget
+    assert len(budget_rows) == 2   # c4 and d4 at the one quick learning rate
+    assert all(-100 <= float(cell) <= 100 for row in budget_rows for cell in row[2:])   # points from TTA
     assert "smallest budget" in output

@@ -128,6 +128,10 @@ def test_pickled_model_needs_trust(tmp_path):
     # so the conversion is refused before it starts, saying how to give the model instead
     assert_refused(code, out, "is a pickled whole model", "package.module:factory")
     assert not (tmp_path / "x.orb").exists()
+    # tune with a plain SOURCE converts and saves too, so it refuses the same way before reading any data
+    code, out = run("tune", pickled, "--trust-pickle", "--data", tmp_path / "missing.npz", "-o", tmp_path / "t.orb")
+    assert_refused(code, out, "is a pickled whole model", "package.module:factory")
+    assert sha256_file(pickled) == before and not (tmp_path / "t.orb").exists()
 
 
 def test_existing_output_needs_force(tmp_path, small_weights):

@@ -84,17 +84,30 @@ def save(converted: fx.GraphModule, plan: ConversionPlan, path: PathLike, *, ref
     figures that are not JSON data, and :class:`~orbify.errors.OutputError` for an output that
     exists without ``force`` or cannot be written. Nothing is written when it raises.
     """
-    if reference is None or not isinstance(reference, str) or not reference.strip():
-        raise SourceError("The converted model has no source reference to rebuild its architecture from "
-                          "(a model read from a pickle has none)",
-                          fix="convert a model given as torchvision:NAME or package.module:factory (with --weights) "
-                              "so the file can name it")
+    require_reference(reference)
     if not isinstance(converted, fx.GraphModule):
         raise OptionError(f"Only a converted GraphModule can be saved, got a {type(converted).__name__}",
                           fix="save the module that orbify.convert returned")
     description = _description(converted, plan, reference, recipe, check, leaf_types)
     content = {DESCRIPTION_KEY: description, STATE_KEY: dict(converted.state_dict())}
     return atomic_write(path, lambda stream: torch.save(content, stream), force=force)
+
+
+def require_reference(reference: str | None, source: str | None = None) -> None:
+    """Raise :class:`SourceError` unless ``reference`` names an architecture a converted file can rebuild.
+
+    A model read from a pickled whole model has no reference (``LoadedSource.reference`` is None);
+    commands call this before converting, so the refusal comes before any work. ``source`` is the
+    SOURCE argument as the user gave it, named in the message.
+    """
+    if isinstance(reference, str) and reference.strip():
+        return
+    what = f"{source!r} is a pickled whole model" if source is not None else "The model has no source reference"
+    raise SourceError(f"{what}: a converted-model file must name an architecture it can rebuild, and a pickle "
+                      "names none", where="SOURCE" if source is not None else "reference",
+                      fix="give the architecture as torchvision:NAME or package.module:factory with --weights (save "
+                          "the state dict with torch.save(model.state_dict(), path)), or convert in Python with "
+                          "orbify.convert and keep the result with torch.save")
 
 
 def _description(converted: nn.Module, plan: ConversionPlan, reference: str, recipe: str | None,

@@ -25,7 +25,7 @@ from ..plan import BUDGETS, HEADS, INITS, ConversionPlan, check_choice
 from ..recipes import find_recipe_for, load_recipe, merge_options
 from ..recipes.schema import CALIBRATION_IMAGES
 from ..report import error, ratio, si
-from ..saving import is_converted_file, save
+from ..saving import is_converted_file, require_reference, save
 from ..sizes import SizeChecker
 from ..sources import TORCHVISION_PREFIX
 from .app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console, parse_floats
@@ -187,12 +187,7 @@ def convert_command(
     check_options(options)
     check_calibration(options["init"], calibration)
     loaded = read_model(source, weights, trust_pickle)
-    if loaded.reference is None:
-        raise OptionError(f"{source!r} is a pickled whole model: a converted-model file must name an architecture "
-                          "it can rebuild, and a pickle names none", where="SOURCE",
-                          fix="give the architecture as torchvision:NAME or package.module:factory with --weights "
-                              "(save the state dict with torch.save(model.state_dict(), path)), or convert in Python "
-                          "with orbify.convert and keep the result with torch.save")
+    require_reference(loaded.reference, source)
     original = loaded.module
     channels = channels or input_channels(original)
     if recipe is not None:

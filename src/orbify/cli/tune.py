@@ -22,7 +22,7 @@ from ..distributed import process_rank
 from ..errors import OptionError
 from ..plan import ConversionPlan, check_choice
 from ..recipes.schema import CALIBRATION_IMAGES
-from ..saving import load, save
+from ..saving import load, require_reference, save
 from ..sizes import SizeChecker
 from ..sources import TORCHVISION_PREFIX
 from ..teacher import VIEW_COMBINATIONS
@@ -149,10 +149,7 @@ def read_inputs(model: str, original: str | None, weights: Path | None, trust_pi
                           where="option --original", fix="leave out --original, or give a converted (.orb) file")
     _require_weights(model, weights)
     loaded = read_model(model, weights, trust_pickle)
-    if loaded.reference is None:
-        raise OptionError(f"The tuned model cannot be saved: {model!r} is a pickled model, which a converted-model "
-                          "file cannot name", where="MODEL",
-                          fix="give the architecture as torchvision:NAME or package.module:factory with --weights")
+    require_reference(loaded.reference, model)
     teacher = loaded.module
     images = read_images(data, size=input_size, channels=channels or input_channels(teacher), limit=limit,
                          mean=mean, std=std)
