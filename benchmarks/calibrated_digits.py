@@ -14,14 +14,14 @@ random element). Calibration uses the first 512 training images, without labels.
    (kept channels by importance, images as given, no norm refit); and the calibrated conversion
    with each improvement added — transformed copies, kept channels by reconstruction error,
    refitted batch norms — then without each of them (the ablation of the final choice).
-2. **Tuning.** Orbit averaging and calibration as starting points for :func:`orbify.tune.tune`
+2. **Tuning.** Orbit averaging and calibration as starting points for :func:`orbify.tuning.loop`
    (distillation from the probability average over the group, no labels, cosine schedule, the
    tuner's defaults otherwise) at three learning rates: accuracy on every orientation after every
    epoch. The claim: calibrated reaches test-time averaging (TTA) within 0.5 points in no more
    epochs than orbit averaging needs to get within 2 points (each at its best learning rate).
 3. **Epoch budgets.** Reading accuracy off one long run flatters nobody: after epoch 6 of a
    15-epoch cosine schedule the learning rate is still high. A practitioner chooses the number of
-   epochs and the schedule anneals over it, so this part runs :func:`orbify.tune.tune` once per
+   epochs and the schedule anneals over it, so this part runs :func:`orbify.tuning.loop` once per
    budget E (cosine over E epochs) and learning rate, for every seed of the original, and reports
    the final accuracy on every element minus TTA, averaged over the seeds. The claim, read here:
    the smallest budget at which calibrated ends within 0.5 points of TTA is no larger than the
@@ -54,14 +54,17 @@ import torch  # noqa: E402
 import typer  # noqa: E402
 from torch import nn  # noqa: E402
 
-from orbify import convert, parse_group  # noqa: E402
-from orbify.calibrate import calibrate_conversion  # noqa: E402
-from orbify.experiments.digits import (SIX_NINE_POLICY, DigitSplits, accuracy_every_element,  # noqa: E402
-                                       load_digit_splits, train_digits_cnn)
-from orbify.fileio import atomic_write  # noqa: E402
-from orbify.groups import Group  # noqa: E402
-from orbify.teacher import GroupAveraged  # noqa: E402
-from orbify.tune import tune  # noqa: E402
+from orbify import convert, parse_group
+from orbify.calibration.calibrate import calibrate_conversion
+from orbify.experiments.digits import (SIX_NINE_POLICY,
+    DigitSplits,
+    accuracy_every_element,
+    load_digit_splits,
+    train_digits_cnn)
+from orbify.common.safe_io import atomic_write
+from orbify.symmetry.groups import Group
+from orbify.tuning.teacher import GroupAveraged
+from orbify.tuning.loop import tune
 
 CALIBRATION_IMAGES = 512
 FIRST_VERSION = dict(selection="importance", transformed_copies=False, refit_norms=False)
@@ -335,7 +338,7 @@ def main(
         "conversion": "channels budget; orbit averaging with channel matching, or calibrated on the first "
                       f"{CALIBRATION_IMAGES} training images (no labels)",
         "agreement": "test split: top-1 of the converted model = top-1 of the original's logits averaged over the group",
-        "tuning": f"orbify.tune, {settings.tune_epochs} epochs, cosine, lr {settings.learning_rates}, probability-"
+        "tuning": f"orbify.tuning.loop, {settings.tune_epochs} epochs, cosine, lr {settings.learning_rates}, probability-"
                   "average teacher, no labels, batch-norm recalibration first (the tuner's default), seed 0",
         "epoch budgets": f"one cosine run per budget {settings.budgets} and lr {settings.budget_learning_rates}, "
                          f"every seed of the original",

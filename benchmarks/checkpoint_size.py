@@ -4,7 +4,7 @@ For each model and group, the converted model (``channels`` budget) is written w
 :func:`orbify.save` (a ``.orb`` file: base weights and a JSON description) and its size compared with
 ``torch.save(original.state_dict())`` and with the state dict of the baked model
 (:func:`orbify.bake_model`, every weight expanded). Stored parameter counts come from
-:func:`orbify.measure.count_params`. Sizes are deterministic, so each is measured once.
+:func:`orbify.verification.measure.count_params`. Sizes are deterministic, so each is measured once.
 
 Run: ``python benchmarks/checkpoint_size.py`` (full, a few minutes) or ``--quick`` (smoke run, under a minute).
 """
@@ -20,8 +20,8 @@ import torch  # noqa: E402
 import torchvision  # noqa: E402
 import typer  # noqa: E402
 
-from orbify import bake_model, convert, save  # noqa: E402
-from orbify.measure import count_params, state_dict_bytes  # noqa: E402
+from orbify import bake_model, convert, save
+from orbify.verification.measure import count_params, state_dict_bytes
 
 MB = 1e6
 

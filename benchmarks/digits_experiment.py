@@ -12,9 +12,9 @@ accuracy over the elements is reported for:
 
 * the original as it is (one forward pass per image);
 * the original with test-time averaging (TTA) over the group, each way of combining the |G| views
-  (:class:`orbify.teacher.GroupAveraged`; |G| forward passes per image);
+  (:class:`orbify.tuning.teacher.GroupAveraged`; |G| forward passes per image);
 * the converted model (``channels`` budget, same width and about the same MACs) before tuning;
-* the converted model tuned by distillation (:func:`orbify.tune.tune`) from the most confident view
+* the converted model tuned by distillation (:func:`orbify.tuning.loop`) from the most confident view
   of the original, on the training split's images without labels, then with labels as well;
   and, for comparison, from the probability average (design.md section 9: with an upright-only
   original the most confident view is the far better teacher).
@@ -41,14 +41,18 @@ import torch  # noqa: E402
 import typer  # noqa: E402
 from torch import nn  # noqa: E402
 
-from orbify import bake_model, convert, parse_group  # noqa: E402
-from orbify.experiments.digits import (SIX_NINE_POLICY, DigitSplits, accuracy, accuracy_every_element,  # noqa: E402
-                                       load_digit_splits, train_digits_cnn)
-from orbify.fileio import atomic_write  # noqa: E402
-from orbify.groups import Group  # noqa: E402
-from orbify.measure import count_macs  # noqa: E402
-from orbify.teacher import VIEW_COMBINATIONS, GroupAveraged  # noqa: E402
-from orbify.tune import tune  # noqa: E402
+from orbify import bake_model, convert, parse_group
+from orbify.experiments.digits import (SIX_NINE_POLICY,
+    DigitSplits,
+    accuracy,
+    accuracy_every_element,
+    load_digit_splits,
+    train_digits_cnn)
+from orbify.common.safe_io import atomic_write
+from orbify.symmetry.groups import Group
+from orbify.verification.measure import count_macs
+from orbify.tuning.teacher import VIEW_COMBINATIONS, GroupAveraged
+from orbify.tuning.loop import tune
 
 SEED = 0
 WIDTH = 32

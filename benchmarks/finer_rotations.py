@@ -12,9 +12,9 @@ e over the four odd multiples of 45°, and the largest e over the quarter turns 
 float64). The second scale matters because orbit averaging can leave a converted model whose
 logits hardly depend on the image: then e is small for a poor reason, e' is not.
 
-Inputs, each multiplied by the radial disk window of orbify.approximate, so that turning loses no
+Inputs, each multiplied by the radial disk window of orbify.verification.approximate, so that turning loses no
 content:
-* smooth random fields (orbify.approximate.SmoothPattern): sampled turned, not interpolated, so
+* smooth random fields (orbify.verification.approximate.SmoothPattern): sampled turned, not interpolated, so
   the input turn itself adds no error;
 * photographs: scikit-learn's two sample images (``sklearn.datasets.load_sample_images``, shipped
   with the package), square crops turned at full resolution by ``scipy.ndimage.rotate`` (cubic
@@ -64,12 +64,12 @@ from harness import console, fix_threads, markdown_table, print_header, progress
 from scipy import ndimage
 from torch import nn
 
-from orbify.approximate import SmoothPattern, disk_window
-from orbify.bake import bake_model
-from orbify.convert import convert
+from orbify.verification.approximate import SmoothPattern, disk_window
+from orbify.layers.bake import bake_model
+from orbify.conversion.converter import convert
 from orbify.example import CLASS_NAMES, load_example_model, make_tiles
-from orbify.groups import Group, parse_group
-from orbify.recalibrate import recalibrate_batch_norm
+from orbify.symmetry.groups import Group, parse_group
+from orbify.transfer.recalibrate import recalibrate_batch_norm
 
 ANGLES = 8   # c8: views at every multiple of 45°
 MODEL_KEYS = ("random", "trained", "example")

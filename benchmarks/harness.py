@@ -34,7 +34,7 @@ from rich.table import Table  # noqa: E402
 from torch import nn  # noqa: E402
 from torch.nn.utils import parametrize  # noqa: E402
 
-from orbify import recalibrate_batch_norm  # noqa: E402
+from orbify import recalibrate_batch_norm
 
 THREADS = 2
 """Intra-op threads every benchmark uses (``torch.set_num_threads``), stated in every header."""

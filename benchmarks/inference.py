@@ -7,7 +7,7 @@ For each model and batch size, in eval mode without gradients on the CPU, one in
   (``torch.nn.utils.parametrize.cached()``, entered once around the whole run) and baked
   (:func:`orbify.bake_model`, plain modules);
 * the original with test-time averaging over each group, in two forms: all views of the batch in
-  one forward pass (:class:`orbify.teacher.GroupAveraged`) and one forward pass per view
+  one forward pass (:class:`orbify.tuning.teacher.GroupAveraged`) and one forward pass per view
   (:class:`ViewByView`). Which is faster depends on the batch: a small batch leaves cores idle
   that the stacked views fill, a large stacked batch outgrows the caches. The targets compare with
   the faster form, round by round;
@@ -31,10 +31,10 @@ import typer  # noqa: E402
 from torch import nn  # noqa: E402
 from torch.nn.utils import parametrize  # noqa: E402
 
-from orbify import bake_model, convert, parse_group  # noqa: E402
-from orbify.groups import Group  # noqa: E402
-from orbify.sizes import SizeChecker  # noqa: E402
-from orbify.teacher import GroupAveraged, combine_views  # noqa: E402
+from orbify import bake_model, convert, parse_group
+from orbify.symmetry.groups import Group
+from orbify.graph.sizes import SizeChecker
+from orbify.tuning.teacher import GroupAveraged, combine_views
 
 CONVERTED_MAX = 1.05        # converted / original
 AVERAGING_MIN_SHARE = 0.9   # averaging / converted ≥ this · order

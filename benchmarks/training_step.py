@@ -30,7 +30,7 @@ import typer  # noqa: E402
 from torch import nn  # noqa: E402
 from torch.profiler import ProfilerActivity, profile  # noqa: E402
 
-from orbify import bake_model, convert  # noqa: E402
+from orbify import bake_model, convert
 
 TIED_MAX = 1.2   # converted (tied) step / original step
 

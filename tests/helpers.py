@@ -2,8 +2,8 @@
 
 import torch
 
-from orbify.groups import Group
-from orbify.layouts import Layout, act
+from orbify.symmetry.groups import Group
+from orbify.symmetry.layouts import Layout, act
 
 
 def relative_error(a: torch.Tensor, b: torch.Tensor) -> float:

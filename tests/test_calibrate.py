@@ -1,4 +1,4 @@
-"""Calibrated conversion (orbify.calibrate): agreement with the group-averaged original on scikit-learn's
+"""Calibrated conversion (orbify.calibration.calibrate): agreement with the group-averaged original on scikit-learn's
 digits, the refit against a brute-force ridge regression from scikit-learn, every layer kind refitted and
 invariant, the fallback, bounded memory, bad input, and two torchvision backbones."""
 
@@ -11,7 +11,7 @@ from sklearn.linear_model import Ridge
 from torch import nn
 
 from orbify import convert, parse_group, recalibrate_batch_norm
-from orbify.calibrate import calibrate_conversion
+from orbify.calibration.calibrate import calibrate_conversion
 from orbify.errors import DataError, OptionError
 from orbify.experiments.digits import load_digit_splits, train_digits_cnn
 

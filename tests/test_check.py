@@ -11,17 +11,17 @@ from torch import nn
 from torch.nn.utils import parametrize
 from typer.testing import CliRunner
 
-from orbify.check import check_model, parse_layout
+from orbify.verification.check import check_model, parse_layout
 from orbify.cli import app, main
-from orbify.convert import convert
+from orbify.conversion.converter import convert
 from orbify.data import ImageSet
 from orbify.errors import GroupError
 from orbify.example import load_example_model, make_tiles
-from orbify.layouts import Flat, Orbit, Plain
-from orbify.measure import count_macs, count_params
-from orbify.recalibrate import recalibrate_batch_norm
-from orbify.report import check_markdown, plot_check, write_json
-from orbify.saving import save
+from orbify.symmetry.layouts import Flat, Orbit, Plain
+from orbify.verification.measure import count_macs, count_params
+from orbify.transfer.recalibrate import recalibrate_batch_norm
+from orbify.verification.report import check_markdown, plot_check, write_json
+from orbify.files.saving import save
 
 TOL = 1e-5
 runner = CliRunner()
@@ -73,7 +73,7 @@ def test_exact_group_at_a_safe_size_is_invariant_layer_by_layer():
     assert len(report.output_element_errors) == 8 and report.output_element_errors[0] == 0.0
     assert [layer.name for layer in report.layers] == [layer.name for layer in plan.layers]
     assert all(layer.equivariance_error <= TOL for layer in report.layers)
-    # cost figures are those of orbify.measure (checked against torchvision's published figures in test_measure)
+    # cost figures are those of orbify.verification.measure (checked against torchvision's published figures in test_measure)
     assert report.params_before == count_params(original) and report.params_after == count_params(converted)
     assert report.macs_before == count_macs(original, torch.zeros(1, 3, 17, 17))
     assert report.macs_after == count_macs(converted, torch.zeros(1, 3, 17, 17))

@@ -1,7 +1,7 @@
 """The command line a newcomer meets: convert, sizes and demo, their help, input-size choice and error paths.
 
 Every error path must exit non-zero with one paragraph and no traceback, write nothing and leave the
-input files byte-for-byte unchanged (hashed before and after with orbify.fileio.sha256_file).
+input files byte-for-byte unchanged (hashed before and after with orbify.common.safe_io.sha256_file).
 """
 
 import numpy as np
@@ -15,7 +15,7 @@ import orbify
 from orbify.cli import app
 from orbify.cli.convert import choose_input_size
 from orbify.example import load_example_model, make_tiles
-from orbify.fileio import sha256_file
+from orbify.common.safe_io import sha256_file
 
 runner = CliRunner()
 

@@ -6,11 +6,11 @@ import torchvision
 from torch import nn
 
 import robust_models
-from orbify.convert import convert
+from orbify.conversion.converter import convert
 from orbify.errors import OptionError, TraceError, UnsupportedOpError, WidthError
-from orbify.groups import parse_group
-from orbify.recalibrate import recalibrate_batch_norm
-from orbify.sizes import safe_sizes
+from orbify.symmetry.groups import parse_group
+from orbify.transfer.recalibrate import recalibrate_batch_norm
+from orbify.graph.sizes import safe_sizes
 
 TOL = 1e-5
 

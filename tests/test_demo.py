@@ -14,7 +14,7 @@ import torch
 from typer.testing import CliRunner
 
 from orbify.cli import app
-from orbify.demo import FILES, PLOTS
+from orbify.example.demo import FILES, PLOTS
 from orbify.example import make_tiles
 
 TOLERANCE = 1e-5
@@ -35,7 +35,7 @@ def check_the_table(output: str, figures: dict) -> None:
     for row in ("accuracy, upright tiles", "accuracy, field tiles", "invariance error", "parameters stored",
                 "MACs per tile", "ms per tile"):
         assert row in output, row
-    # the demo says which initialisation it used (calibrated: measured better, see orbify.demo.DEMO_INIT)
+    # the demo says which initialisation it used (calibrated: measured better, see orbify.example.demo.DEMO_INIT)
     assert figures["init"] == "calibrated" and "init calibrated" in " ".join(output.split())
     columns = {column["name"]: column for column in figures["columns"]}
     assert list(columns) == ["original", "converted", "tuned", "exported"]

@@ -13,7 +13,7 @@ import torch
 from torch import nn
 
 from orbify.errors import CheckpointError, OutputError
-from orbify.fileio import atomic_write, load_torch_weights, save_torch, sha256_file
+from orbify.common.safe_io import atomic_write, load_torch_weights, save_torch, sha256_file
 
 
 class WriterFailed(Exception):

@@ -22,17 +22,18 @@ from scipy import ndimage
 from torch import nn
 from torch.nn.utils import parametrize
 
-from orbify.approximate import SmoothPattern, approximate_errors, approximate_note, disk_window, worst_errors
-from orbify.bake import bake_model
-from orbify.convert import convert
+from orbify.verification.approximate import SmoothPattern, approximate_errors, disk_window, worst_errors
+from orbify.symmetry.groups import approximate_note
+from orbify.layers.bake import bake_model
+from orbify.conversion.converter import convert
 from orbify.errors import GroupError, UnsupportedOpError
 from orbify.example import load_example_model, make_tiles
-from orbify.groups import Group, parse_group
-from orbify.layouts import Flat, Orbit, Plain, act
-from orbify.modules import bake, tie_conv, tie_linear
-from orbify.recalibrate import recalibrate_batch_norm
-from orbify.resample import central_disk_mask
-from orbify.tying import ResampledWeight, TiedWeight, project, tied_weight, weight_residual
+from orbify.symmetry.groups import Group, parse_group
+from orbify.symmetry.layouts import Flat, Orbit, Plain, act
+from orbify.layers.tied import bake, tie_conv, tie_linear
+from orbify.transfer.recalibrate import recalibrate_batch_norm
+from orbify.symmetry.resample import central_disk_mask
+from orbify.symmetry.tying import ResampledWeight, TiedWeight, project, tied_weight, weight_residual
 
 APPROXIMATE = ["c8", "d8", "c16"]
 TOL = 1e-5
@@ -336,7 +337,7 @@ def test_resnet18_converts_exact_on_quarter_turns_and_bakes(spec, tmp_path):
     baked = bake_model(converted.float())
     with torch.no_grad():
         torch.testing.assert_close(baked(x), converted.float()(x), rtol=1e-4, atol=1e-5)
-    from orbify.export import export_model, run_exported
+    from orbify.files.export import export_model, run_exported
 
     path = export_model(converted.float(), x, tmp_path / "model.pt2")
     torch.testing.assert_close(run_exported(path, "pt2", x), baked(x), rtol=1e-4, atol=1e-5)

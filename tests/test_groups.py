@@ -8,7 +8,7 @@ import torch
 from sympy.combinatorics.named_groups import CyclicGroup, DihedralGroup
 
 from orbify.errors import GroupError
-from orbify.groups import Group, parse_group
+from orbify.symmetry.groups import Group, parse_group
 
 ALL_SMALL = [Group(n, m) for n in range(1, 9) for m in (False, True)]
 

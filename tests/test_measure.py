@@ -7,9 +7,9 @@ import torch
 from torch import nn
 from torch.nn.utils import parametrize
 
-from orbify.fileio import save_torch
-from orbify.measure import count_macs, count_params, state_dict_bytes
-from orbify.sources import load_source
+from orbify.common.safe_io import save_torch
+from orbify.verification.measure import count_macs, count_params, state_dict_bytes
+from orbify.files.sources import load_source
 
 # Source: torchvision model documentation, weight enum metadata num_params / GFLOPS; from memory,
 # reproduced with torchvision 0.29 — see check-values.md. torchvision's "GFLOPS" column counts

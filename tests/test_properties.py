@@ -15,11 +15,11 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from torch import nn
 
-from orbify.convert import convert
+from orbify.conversion.converter import convert
 from orbify.errors import OrbifyError, UnsupportedOpError, WidthError
-from orbify.groups import parse_group
-from orbify.recalibrate import recalibrate_batch_norm
-from orbify.sizes import SizeChecker
+from orbify.symmetry.groups import parse_group
+from orbify.transfer.recalibrate import recalibrate_batch_norm
+from orbify.graph.sizes import SizeChecker
 
 settings.register_profile("quick", max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 settings.register_profile("ci", max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow],

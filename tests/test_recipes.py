@@ -22,12 +22,12 @@ import torch
 from typer.testing import CliRunner
 
 from orbify.cli import app, main
-from orbify.convert import convert
+from orbify.conversion.converter import convert
 from orbify.errors import OptionError, RecipeError
-from orbify.groups import parse_group
-from orbify.recalibrate import recalibrate_batch_norm
+from orbify.symmetry.groups import parse_group
+from orbify.transfer.recalibrate import recalibrate_batch_norm
 from orbify.recipes import find_recipe_for, list_recipes, load_recipe, merge_options, read_recipe, shipped_folder
-from orbify.sources import load_source
+from orbify.files.sources import load_source
 
 TOL = 1e-5
 

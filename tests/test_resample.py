@@ -1,4 +1,4 @@
-"""Tests for orbify.resample: rotating filters and images by angles off the 90° grid.
+"""Tests for orbify.symmetry.resample: rotating filters and images by angles off the 90° grid.
 
 References: numpy.rot90 (exact quarter turns, counter-clockwise as displayed) and
 scipy.ndimage.rotate with order=1 (bilinear rotation by any angle), both from their documentation.
@@ -16,7 +16,7 @@ from hypothesis import strategies as st
 from scipy import ndimage
 
 from orbify.errors import InputShapeError, OptionError
-from orbify.resample import METHODS, central_disk_mask, kernel_rotation_matrix, rotate_images
+from orbify.symmetry.resample import METHODS, central_disk_mask, kernel_rotation_matrix, rotate_images
 
 
 def scipy_rotate(a: np.ndarray, degrees: float, mode: str = "constant") -> np.ndarray:

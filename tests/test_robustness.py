@@ -9,7 +9,7 @@ from typer.testing import CliRunner
 
 import robust_models
 from orbify.cli import app
-from orbify.fileio import sha256_file
+from orbify.common.safe_io import sha256_file
 
 runner = CliRunner()
 

@@ -11,10 +11,10 @@ from orbify import convert, load, save
 from orbify.cli import main
 from orbify.errors import CheckpointError, OptionError, OutputError, SourceError
 from orbify.example import load_example_model
-from orbify.fileio import sha256_file
-from orbify.recalibrate import recalibrate_batch_norm
-from orbify.saving import DESCRIPTION_KEY, FORMAT_NAME, STATE_KEY, is_converted_file
-from orbify.sources import load_source
+from orbify.common.safe_io import sha256_file
+from orbify.transfer.recalibrate import recalibrate_batch_norm
+from orbify.files.saving import DESCRIPTION_KEY, FORMAT_NAME, STATE_KEY, is_converted_file
+from orbify.files.sources import load_source
 
 EXAMPLE = "orbify.example:load_example_model"
 SIZE = 33   # safe for the example CNN, resnet18 and mobilenet_v2 (see tests/test_convert.py SMALL_SAFE)

@@ -13,8 +13,8 @@ import torchvision
 from torch import nn
 
 from orbify.errors import CheckpointError, SourceError, TrustError
-from orbify.fileio import sha256_file
-from orbify.sources import LoadedSource, load_source, rebuild, register_file_loader
+from orbify.common.safe_io import sha256_file
+from orbify.files.sources import LoadedSource, load_source, rebuild, register_file_loader
 
 _module_numbers = itertools.count()
 

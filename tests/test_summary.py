@@ -9,11 +9,11 @@ from torch import nn
 from typer.testing import CliRunner
 
 from orbify.cli import app
-from orbify.convert import convert
+from orbify.conversion.converter import convert
 from orbify.errors import GroupError
-from orbify.measure import count_macs, count_params
-from orbify.report import diff_markdown, summary_markdown
-from orbify.summary import diff_summaries, summarize
+from orbify.verification.measure import count_macs, count_params
+from orbify.verification.report import diff_markdown, summary_markdown
+from orbify.verification.summary import diff_summaries, summarize
 
 runner = CliRunner()
 

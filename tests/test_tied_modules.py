@@ -8,10 +8,10 @@ from torch import nn
 from torch.nn.utils import parametrize
 
 from helpers import max_equivariance_error
-from orbify.groups import parse_group
-from orbify.layouts import Flat, Orbit, Plain
-from orbify.modules import OrbitBatchNorm, OrbitPool, bake, tie_affine, tie_conv, tie_linear
-from orbify.tying import TiedWeight, fibre_index, project, weight_residual
+from orbify.symmetry.groups import parse_group
+from orbify.symmetry.layouts import Flat, Orbit, Plain
+from orbify.layers.tied import OrbitBatchNorm, OrbitPool, bake, tie_affine, tie_conv, tie_linear
+from orbify.symmetry.tying import TiedWeight, fibre_index, project, weight_residual
 
 EXACT = ["c2", "c4", "d1", "d2", "d4"]
 TOL = 1e-5

@@ -9,18 +9,18 @@ import torchvision
 from torch import nn
 from torch.nn.utils import parametrize
 
-from orbify.bake import bake_model
-from orbify.channels import ChannelMap, feed
-from orbify.convert import convert
+from orbify.layers.bake import bake_model
+from orbify.transfer.channels import ChannelMap, feed
+from orbify.conversion.converter import convert
 from orbify.errors import OptionError
 from orbify.experiments.digits import build_digits_cnn, load_digit_splits, train_digits_cnn
-from orbify.graph import trace
-from orbify.groups import parse_group
-from orbify.layouts import Orbit, Plain
-from orbify.modules import OrbitBatchNorm
-from orbify.recalibrate import recalibrate_batch_norm
-from orbify.transfer import ChannelClasses, MatchTerm, match_channels, residual_totals, tied_residual
-from orbify.tying import TiedWeight
+from orbify.graph.tracing import trace
+from orbify.symmetry.groups import parse_group
+from orbify.symmetry.layouts import Orbit, Plain
+from orbify.layers.tied import OrbitBatchNorm
+from orbify.transfer.recalibrate import recalibrate_batch_norm
+from orbify.transfer.matching import ChannelClasses, MatchTerm, match_channels, residual_totals, tied_residual
+from orbify.symmetry.tying import TiedWeight
 
 
 def calibrated(model: nn.Module, size: int, seed: int = 0) -> nn.Module:

@@ -1,4 +1,4 @@
-"""Tuning by distillation (orbify.tune, orbify.teacher): the teacher's view combinations, the training
+"""Tuning by distillation (orbify.tuning.loop, orbify.tuning.teacher): the teacher's view combinations, the training
 loop on scikit-learn's digits, invariance after tuning, exact resumption from checkpoints, bad input."""
 
 from __future__ import annotations
@@ -11,8 +11,8 @@ from torch import nn
 
 from orbify import convert, parse_group
 from orbify.errors import CheckpointError, DataError, OptionError, OutputError
-from orbify.teacher import VIEW_COMBINATIONS, GroupAveraged, combine_views
-from orbify.tune import holdout_split, tune
+from orbify.tuning.teacher import VIEW_COMBINATIONS, GroupAveraged, combine_views
+from orbify.tuning.loop import holdout_split, tune
 
 SIZE = 9
 
@@ -234,7 +234,7 @@ def test_cli_tunes_a_source_converted_on_the_fly_then_the_saved_file(tmp_path):
     from typer.testing import CliRunner
 
     from orbify.cli import app
-    from orbify.saving import load
+    from orbify.files.saving import load
 
     runner = CliRunner()
     data, weights = _cli_files(tmp_path)

@@ -23,7 +23,7 @@ GROUP = "c4"
 
 
 def worker(out: Path) -> None:
-    from orbify.tune import tune
+    from orbify.tuning.loop import tune
 
     original = tiny_original()
     student = tiny_student(original, GROUP)

@@ -1,6 +1,6 @@
 """The least-squares refit of one tied conv or linear layer, accumulated batch by batch.
 
-A tied layer's full weight is a linear function of its base (:mod:`orbify.tying`). Calibration
+A tied layer's full weight is a linear function of its base (:mod:`orbify.symmetry.tying`). Calibration
 fits base rows so that chosen output rows reproduce targets taken from the original:
 
 * **orbit outputs**: the base row of orbit o *is* the slot-0 filter (design.md section 4), and
@@ -30,7 +30,7 @@ import torch.nn.functional as F
 from torch import nn
 from torch.nn.utils import parametrize
 
-from ..groups import Group
+from orbify.symmetry.groups import Group
 
 #: Largest number of features per output row that is refitted (its Gram matrix: 8192² float64 = 0.5 GB).
 MAX_FEATURES = 8192

@@ -21,9 +21,9 @@ from dataclasses import dataclass, field
 import torch
 from torch import fx, nn
 
-from ..errors import InputShapeError
-from ..groups import Group
-from ..modules import OrbitPool
+from orbify.errors import InputShapeError
+from orbify.symmetry.groups import Group
+from orbify.layers.tied import OrbitPool
 
 CONVERTED = "converted"
 ORIGINAL = "original"

@@ -3,7 +3,7 @@
 At the ``channels`` budget a layer of C channels becomes C/|G| orbits; calibration lets orbit o
 stand for one kept original channel (slot 0 reproduces it, the other slots its moved copies).
 Values joined by an elementwise op (a residual add, a squeeze-excitation product) must keep the
-same channels, so the choice is made per channel class (:class:`orbify.transfer.ChannelClasses`)
+same channels, so the choice is made per channel class (:class:`orbify.transfer.matching.ChannelClasses`)
 from a score per original channel:
 
 * ``importance``: the gain of the channel in every layer that writes it, the norm of its filter
@@ -24,11 +24,11 @@ import math
 import torch
 from torch import fx, nn
 
-from ..channels import dense_from_groups
-from ..graph import shape
-from ..groups import Group
-from ..transfer import ChannelClasses, chooses_channels
-from .span import OrbitCovariance, SpanRequest, greedy_orbits
+from orbify.transfer.channels import dense_from_groups
+from orbify.graph.tracing import shape
+from orbify.symmetry.groups import Group
+from orbify.transfer.matching import ChannelClasses, chooses_channels
+from orbify.calibration.span import OrbitCovariance, SpanRequest, greedy_orbits
 
 SELECTIONS = ("importance", "reconstruction")
 LAYER_TYPES = (nn.Conv2d, nn.ConvTranspose2d, nn.Linear)

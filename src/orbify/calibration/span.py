@@ -27,7 +27,7 @@ from dataclasses import dataclass
 
 import torch
 
-from ..groups import Group
+from orbify.symmetry.groups import Group
 
 #: Samples (positions) per batch and channel class used for the covariance, at most.
 SAMPLES_PER_BATCH = 2048

@@ -9,16 +9,16 @@ traceback; ``orbify --debug COMMAND`` shows the traceback.
 from __future__ import annotations
 
 
-from .app import app, main
+from orbify.cli.app import app, main
 
 # Command modules register themselves on `app` when imported.
-from . import sizes  # noqa: E402,F401
-from . import convert  # noqa: E402,F401
-from . import demo  # noqa: E402,F401
-from . import export  # noqa: E402,F401
-from . import check  # noqa: E402,F401
-from . import summary  # noqa: E402,F401
-from . import tune  # noqa: E402,F401
-from . import recipes  # noqa: E402,F401
+from orbify.cli import sizes
+from orbify.cli import convert
+from orbify.cli import demo
+from orbify.cli import export
+from orbify.cli import check
+from orbify.cli import summary
+from orbify.cli import tune
+from orbify.cli import recipes
 
 __all__ = ["app", "main"]

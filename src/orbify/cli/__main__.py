@@ -1,6 +1,6 @@
 """``python -m orbify.cli``: the command line as a module, for launchers such as ``torchrun -m orbify.cli``."""
 
-from . import main
+from orbify.cli import main
 
 if __name__ == "__main__":
     main()

@@ -11,7 +11,7 @@ import typer
 from rich.console import Console
 from typer.core import TyperGroup
 
-from ..errors import OptionError, OrbifyError
+from orbify.errors import OptionError, OrbifyError
 
 console = Console()
 errors = Console(stderr=True)

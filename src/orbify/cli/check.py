@@ -14,17 +14,22 @@ import torch
 import typer
 from torch import nn
 
-from ..check import check_model
-from ..convert import convert
-from ..data import ImageSet, read_images
-from ..errors import OptionError, OutputError
-from ..plan import ConversionPlan
-from ..recalibrate import recalibrate_batch_norm
-from ..report import PLOT_FILES, check_markdown, check_renderable, plot_check, write_json, write_text
-from ..saving import is_converted_file, load
-from .app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console, errors, parse_floats
-from .convert import choose_input_size, input_channels
-from .models import read_model
+from orbify.verification.check import check_model
+from orbify.conversion.converter import convert
+from orbify.data import ImageSet, read_images
+from orbify.errors import OptionError, OutputError
+from orbify.graph.plan import ConversionPlan
+from orbify.transfer.recalibrate import recalibrate_batch_norm
+from orbify.verification.report import (PLOT_FILES,
+    check_markdown,
+    check_renderable,
+    plot_check,
+    write_json,
+    write_text)
+from orbify.files.saving import is_converted_file, load
+from orbify.cli.app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console, errors, parse_floats
+from orbify.cli.convert import choose_input_size, input_channels
+from orbify.cli.models import read_model
 
 GROUP_HELP = "The rotation group: c4 (quarter turns), d4 (quarter turns and mirror images), c2, d1, d2, c8, ..."
 BUDGET_HELP = "channels (same width, ÷|G| parameters), params (≈ same parameters) or fields (×|G| width, lossless)."

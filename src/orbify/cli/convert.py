@@ -15,21 +15,22 @@ import typer
 from rich.table import Table
 from torch import nn
 
-from ..approximate import approximate_note
-from ..check import CheckReport, check_model, random_inputs
-from ..convert import MATCH_DEFAULT, convert
-from ..data import read_images
-from ..errors import OptionError, OutputError
-from ..groups import parse_group
-from ..plan import BUDGETS, HEADS, INITS, ConversionPlan, check_choice
-from ..recipes import find_recipe_for, load_recipe, merge_options
-from ..recipes.schema import CALIBRATION_IMAGES
-from ..report import error, ratio, si
-from ..saving import is_converted_file, require_reference, save
-from ..sizes import SizeChecker
-from ..sources import TORCHVISION_PREFIX
-from .app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console, parse_floats
-from .models import read_model
+from orbify.symmetry.groups import approximate_note
+from orbify.verification.check import CheckReport, check_model, random_inputs
+from orbify.conversion.converter import MATCH_DEFAULT, convert
+from orbify.data import read_images
+from orbify.errors import OptionError, OutputError
+from orbify.symmetry.groups import parse_group
+from orbify.graph.plan import BUDGETS, HEADS, INITS, ConversionPlan
+from orbify.common.options import check_choice
+from orbify.recipes import find_recipe_for, load_recipe, merge_options
+from orbify.recipes.schema import CALIBRATION_IMAGES
+from orbify.verification.report import error, ratio, si
+from orbify.files.saving import is_converted_file, require_reference, save
+from orbify.graph.sizes import SizeChecker
+from orbify.files.sources import TORCHVISION_PREFIX
+from orbify.cli.app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console, parse_floats
+from orbify.cli.models import read_model
 
 IMAGENET_SIZE = 224
 """The usual input side of ImageNet backbones (torchvision's classification models; common practice)."""
@@ -67,7 +68,7 @@ def choose_input_size(model: nn.Module, source: str, *, requested: int | None = 
     In order: the ``requested`` size (kept even when unsafe — the reason then names the first
     strided op that breaks and the nearest safe sizes), the recipe's size, else the safe size
     nearest :func:`usual_input_size`. A size is *safe* when every strided op samples a grid that
-    quarter turns map onto themselves (:class:`orbify.sizes.SizeChecker`).
+    quarter turns map onto themselves (:class:`orbify.graph.sizes.SizeChecker`).
     """
     checker = SizeChecker(model, channels)
     if requested is not None:

@@ -7,8 +7,8 @@ from pathlib import Path
 import typer
 from rich.table import Table
 
-from ..demo import DemoResult, run_demo
-from .app import ForceOption, app, console
+from orbify.example.demo import DemoResult, run_demo
+from orbify.cli.app import ForceOption, app, console
 
 
 @app.command()

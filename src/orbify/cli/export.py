@@ -9,11 +9,11 @@ import torch
 import typer
 from rich.table import Table
 
-from ..errors import ExportError
-from ..export import FORMATS, export_model, run_exported
-from ..saving import is_converted_file, load
-from .app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console
-from .models import read_model
+from orbify.errors import ExportError
+from orbify.files.export import FORMATS, export_model, run_exported
+from orbify.files.saving import is_converted_file, load
+from orbify.cli.app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console
+from orbify.cli.models import read_model
 
 _DEFAULT_SIZE = 224
 _DEFAULT_CHANNELS = 3

@@ -4,7 +4,7 @@ from __future__ import annotations
 
 from pathlib import Path
 
-from ..sources import LoadedSource, load_source
+from orbify.files.sources import LoadedSource, load_source
 
 
 def read_model(source: str, weights: Path | None = None, trust_pickle: bool = False) -> LoadedSource:

@@ -8,9 +8,9 @@ from typing import Optional
 import typer
 from rich.table import Table
 
-from ..sizes import SizeChecker
-from .app import SOURCE_HELP, TrustOption, WeightsOption, app, console
-from .models import read_model
+from orbify.graph.sizes import SizeChecker
+from orbify.cli.app import SOURCE_HELP, TrustOption, WeightsOption, app, console
+from orbify.cli.models import read_model
 
 
 @app.command()

@@ -8,15 +8,25 @@ from typing import Optional
 import torch
 import typer
 
-from ..convert import convert
-from ..report import diff_markdown, diff_table, summary_markdown, summary_table, write_json, write_text
-from ..saving import load
-from ..summary import ModelSummary, diff_summaries, summarize
-from .app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console
-from .check import (BUDGET_HELP, HEAD_HELP, ChannelsOption, JsonOption, MarkdownOption, is_converted_source,
-                    refuse_existing)
-from .convert import input_channels, usual_input_size
-from .models import read_model
+from orbify.conversion.converter import convert
+from orbify.verification.report import (diff_markdown,
+    diff_table,
+    summary_markdown,
+    summary_table,
+    write_json,
+    write_text)
+from orbify.files.saving import load
+from orbify.verification.summary import ModelSummary, diff_summaries, summarize
+from orbify.cli.app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console
+from orbify.cli.check import (BUDGET_HELP,
+    HEAD_HELP,
+    ChannelsOption,
+    JsonOption,
+    MarkdownOption,
+    is_converted_source,
+    refuse_existing)
+from orbify.cli.convert import input_channels, usual_input_size
+from orbify.cli.models import read_model
 
 SIZE_HELP = ("Height and width of the input (default: as converted for a converted file, else the architecture's "
              "usual size, e.g. 224 for torchvision models).")

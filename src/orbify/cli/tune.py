@@ -16,21 +16,22 @@ import typer
 from rich.table import Table
 from torch import fx, nn
 
-from ..convert import convert
-from ..data import ImageSet, evenly_spaced, read_images
-from ..distributed import process_rank
-from ..errors import OptionError
-from ..plan import ConversionPlan, check_choice
-from ..recipes.schema import CALIBRATION_IMAGES
-from ..saving import load, require_reference, save
-from ..sizes import SizeChecker
-from ..sources import TORCHVISION_PREFIX
-from ..teacher import VIEW_COMBINATIONS
-from ..tune import SCHEDULES, TuneResult, tune
-from .app import ForceOption, TrustOption, app, console, parse_floats
-from .check import is_converted_source
-from .convert import input_channels, refuse_output
-from .models import read_model
+from orbify.conversion.converter import convert
+from orbify.data import ImageSet, evenly_spaced, read_images
+from orbify.tuning.distributed import process_rank
+from orbify.errors import OptionError
+from orbify.graph.plan import ConversionPlan
+from orbify.common.options import check_choice
+from orbify.recipes.schema import CALIBRATION_IMAGES
+from orbify.files.saving import load, require_reference, save
+from orbify.graph.sizes import SizeChecker
+from orbify.files.sources import TORCHVISION_PREFIX
+from orbify.tuning.teacher import VIEW_COMBINATIONS
+from orbify.tuning.loop import SCHEDULES, TuneResult, tune
+from orbify.cli.app import ForceOption, TrustOption, app, console, parse_floats
+from orbify.cli.check import is_converted_source
+from orbify.cli.convert import input_channels, refuse_output
+from orbify.cli.models import read_model
 
 
 TUNE_INITS = ("orbit-average", "calibrated")

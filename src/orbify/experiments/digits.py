@@ -59,7 +59,7 @@ def train_digits_cnn(splits: DigitSplits, *, epochs: int = 30, seed: int = 0, au
                      width: int = 32) -> nn.Module:
     """Train :func:`build_digits_cnn` on the training split (seconds on a CPU); returns it in eval mode.
 
-    With ``augment_group`` (a :class:`~orbify.groups.Group`), every batch is moved by a random group
+    With ``augment_group`` (a :class:`~orbify.symmetry.groups.Group`), every batch is moved by a random group
     element (rotation augmentation); without it the model only ever sees upright digits.
     """
     generator = torch.Generator().manual_seed(seed)

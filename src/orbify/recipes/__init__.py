@@ -6,9 +6,9 @@ your own; ``find_recipe_for("resnet18")`` finds the recipe for an architecture. 
 format is described in :mod:`orbify.recipes.schema` and in the README, section "Recipes".
 """
 
-from .catalog import find_recipe_for, list_recipes, load_recipe, read_recipe, shipped_folder
-from .recipe import Recipe, merge_options
-from .schema import SECTIONS
+from orbify.recipes.catalog import find_recipe_for, list_recipes, load_recipe, read_recipe, shipped_folder
+from orbify.recipes.recipe import Recipe, merge_options
+from orbify.recipes.schema import SECTIONS
 
 __all__ = ["Recipe", "SECTIONS", "find_recipe_for", "list_recipes", "load_recipe", "merge_options", "read_recipe",
            "shipped_folder"]

@@ -8,9 +8,9 @@ import sys
 from importlib import resources
 from pathlib import Path
 
-from ..errors import RecipeError
-from .recipe import Recipe
-from .schema import validate
+from orbify.errors import RecipeError
+from orbify.recipes.recipe import Recipe
+from orbify.recipes.schema import validate
 
 if sys.version_info >= (3, 11):
     import tomllib

@@ -6,7 +6,7 @@ A recipe file is TOML with five sections (see the README, "Recipes"):
 ``[convert]``      the options of :func:`orbify.convert` plus the ``input_size`` to convert at;
 ``[calibrate]``    how many of the user's images a calibrated conversion (``init = "calibrated"``) uses;
 ``[recalibrate]``  how many batches of the user's images re-estimate batch-norm statistics;
-``[tune]``         defaults for :func:`orbify.tune.tune`.
+``[tune]``         defaults for :func:`orbify.tuning.loop`.
 
 :func:`validate` checks parsed TOML against :data:`SECTIONS` and fills in the defaults; every
 problem is a :class:`~orbify.errors.RecipeError` that names the file, the key path (such as
@@ -22,13 +22,13 @@ from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
-from ..convert import MATCH_DEFAULT
-from ..errors import GroupError, RecipeError
-from ..groups import parse_group
-from ..plan import BUDGETS, HEADS, INITS
-from ..sources import FACTORY_PATTERN, TORCHVISION_PREFIX
-from ..teacher import VIEW_COMBINATIONS
-from ..tune import SCHEDULES, TuneOptions
+from orbify.conversion.converter import MATCH_DEFAULT
+from orbify.errors import GroupError, RecipeError
+from orbify.symmetry.groups import parse_group
+from orbify.graph.plan import BUDGETS, HEADS, INITS
+from orbify.files.sources import FACTORY_PATTERN, TORCHVISION_PREFIX
+from orbify.tuning.teacher import VIEW_COMBINATIONS
+from orbify.tuning.loop import SCHEDULES, TuneOptions
 
 REQUIRED = object()
 """Marks a key without a default."""

@@ -1,0 +1,1 @@
+"""Whole-model conversion: the walk over the graph that rewrites layers and carries their weights."""

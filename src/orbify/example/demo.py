@@ -1,0 +1,432 @@
+"""The whole job on the bundled example: convert, check, tune, check again, export.
+
+:func:`run_demo` takes the example CNN (trained on upright micrograph tiles, see
+:mod:`orbify.example`), converts it under :data:`DEMO_GROUP`, checks it, tunes it by distillation
+on upright tiles, checks it again and exports it as a pt2 program. It measures every model on
+fresh tiles — upright, in the field (any angle, mirrored half the time) and moved by every group
+element — and leaves the converted and tuned models, the check reports, the exported program,
+the before/after table and plots in one folder. ``orbify demo`` calls it.
+"""
+
+from __future__ import annotations
+
+import copy
+import io
+import math
+import time
+from contextlib import contextmanager
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+
+import torch
+from rich.console import Console
+from torch import nn
+from torch.nn.utils import parametrize
+
+from orbify.layers.bake import bake_model
+from orbify.verification.check import CheckReport, check_model
+from orbify.conversion.converter import convert
+from orbify.data import ImageSet
+from orbify.errors import OutputError
+from orbify.example import make_tiles
+from orbify.files.export import export_model
+from orbify.common.safe_io import atomic_write
+from orbify.symmetry.groups import Group, parse_group
+from orbify.verification.measure import count_macs, count_params
+from orbify.verification.report import check_markdown, markdown_table, plot_check, write_json, write_text
+from orbify.symmetry.resample import rotate_images
+from orbify.recipes import load_recipe, merge_options
+from orbify.files.saving import save
+from orbify.files.sources import load_source
+from orbify.tuning.teacher import view_logits
+from orbify.tuning.loop import TuneResult, tune
+
+EXAMPLE_SOURCE = "orbify.example:load_example_model"
+"""The SOURCE reference of the bundled model (what ``orbify convert example`` reads)."""
+
+RECIPE = "example"
+"""The shipped recipe for the bundled model: budget, channel matching, input size and the tuning settings."""
+DEMO_GROUP = "c4"
+"""Quarter turns. Measured with the demo's tuning settings on 600 field tiles, tuning seeds 0 and 1:
+c4 reached 82 % and 80 %, d4 76 % and 76 %. The six particle shapes are mirror-symmetric, so a
+c4 model also recognises the mirrored field tiles, and it keeps twice d4's parameters at the
+same MACs. The recipe's d4 is overridden here as ``--group c4`` would override it."""
+
+DEMO_INIT = "calibrated"
+"""How the converted model starts. Measured with the demo's settings (field tiles, before tuning →
+after tuning with tuning seeds 0 and 1): orbit average 17.7 % → 81.7 % and 82.7 %; calibrated on
+:data:`CALIBRATION_TILES` upright tiles 49.2 % → 83.0 % and 83.3 %. The calibrated model follows
+the original averaged over the group (83 % top-1 agreement on the field tiles), which is itself
+only 52 % accurate there, since the original only ever saw upright tiles; tuning then takes the
+most confident view as teacher."""
+CALIBRATION_TILES = 256
+"""Upright training tiles, without their labels, that the calibrated conversion refits on."""
+
+TRAIN_TILES = 2000
+"""Upright tiles the converted model is tuned on (a tenth of them held out by :func:`orbify.tuning.loop`)."""
+EVALUATION_TILES = 600
+"""Fresh tiles of each split every model is measured on."""
+
+ANGLE_STEP_DEGREES = 15
+"""Spacing of the rotation angles in the accuracy-by-angle plot."""
+ANGLE_TILES = 200
+"""Upright tiles rotated to every angle of the accuracy-by-angle plot."""
+CHECK_TILES = 16
+"""Upright tiles each check measures per-layer errors on (in float64)."""
+TIMING_BATCH = 256
+TIMING_REPEATS = 5
+SEEDS = {"train": 100, "upright": 101, "any": 102}
+"""Tile seeds of the demo's own tiles; the shipped weights were trained on tile seeds 0 and 1."""
+
+FILES = {
+    "converted": "converted.orb",
+    "tuned": "tuned.orb",
+    "exported": "tuned.pt2",
+    "check_converted_md": "check-converted.md",
+    "check_converted_json": "check-converted.json",
+    "check_tuned_md": "check-tuned.md",
+    "check_tuned_json": "check-tuned.json",
+    "results_json": "results.json",
+    "results_md": "results.md",
+}
+PLOTS = {
+    "accuracy_by_angle": "plots/accuracy_by_angle.png",
+    "tuning": "plots/tuning.png",
+    "layer_errors": "plots/layer_errors.png",
+    "first_layer_filters": "plots/first_layer_filters.png",
+}
+
+
+@dataclass(frozen=True)
+class ModelFigures:
+    """One column of the before/after table: a model measured on the demo's fresh tiles.
+
+    ``upright_accuracy``: upright tiles; ``any_accuracy``: field tiles (any angle, mirrored half
+    the time); ``moved_accuracy`` / ``worst_moved_accuracy``: upright tiles moved by every group
+    element, mean and worst element; ``invariance_error``: max over the group of
+    ‖f(g·x) − f(x)‖ / ‖f(x)‖ on the upright tiles' logits, in float32; ``params``: numbers stored;
+    ``macs``: multiply-accumulates per tile; ``ms_per_image``: CPU inference time per tile in a
+    batch of :data:`TIMING_BATCH`.
+    """
+
+    name: str
+    upright_accuracy: float
+    any_accuracy: float
+    moved_accuracy: float
+    worst_moved_accuracy: float
+    invariance_error: float
+    params: int
+    macs: int
+    ms_per_image: float
+
+
+@dataclass(frozen=True)
+class DemoResult:
+    """What :func:`run_demo` measured and wrote.
+
+    ``columns``: the original, the converted (untuned), the tuned and the exported model, in that
+    order. ``accuracy_by_angle`` maps a column name to its accuracy on the upright tiles rotated by
+    each of ``angles`` (degrees). ``files`` maps a role (keys of :data:`FILES` and :data:`PLOTS`)
+    to the path written. ``seconds``: wall time of the whole run.
+    """
+
+    out_dir: Path
+    group: str
+    budget: str
+    init: str
+    columns: tuple[ModelFigures, ...]
+    angles: tuple[int, ...]
+    accuracy_by_angle: dict[str, tuple[float, ...]]
+    tuning: TuneResult
+    files: dict[str, Path]
+    seconds: float
+    notes: tuple[str, ...] = field(default=())
+
+    def column(self, name: str) -> ModelFigures:
+        """The column of that name ("original", "converted", "tuned", "exported")."""
+        for figures in self.columns:
+            if figures.name == name:
+                return figures
+        raise KeyError(name)
+
+    def table_rows(self) -> tuple[tuple[str, ...], list[tuple[str, ...]]]:
+        """The before/after table as a header and rows of strings (terminal and markdown show the same)."""
+        header = ("", *(figures.name for figures in self.columns))
+        rows = [
+            ("accuracy, upright tiles", *(_percent(f.upright_accuracy) for f in self.columns)),
+            ("accuracy, field tiles (any angle)", *(_percent(f.any_accuracy) for f in self.columns)),
+            (f"accuracy, upright moved by {self.group} (mean)", *(_percent(f.moved_accuracy) for f in self.columns)),
+            (f"accuracy, upright moved by {self.group} (worst)",
+             *(_percent(f.worst_moved_accuracy) for f in self.columns)),
+            (f"invariance error ({self.group}, float32)", *(f"{f.invariance_error:.1e}" for f in self.columns)),
+            ("parameters stored", *(f"{f.params:,}" for f in self.columns)),
+            ("MACs per tile", *(f"{f.macs / 1e6:.2f} M" for f in self.columns)),
+            ("inference, ms per tile", *(f"{f.ms_per_image:.3f}" for f in self.columns)),
+        ]
+        return header, rows
+
+    def markdown(self) -> str:
+        """The table with a heading and the notes, as markdown."""
+        header, rows = self.table_rows()
+        lines = [f"# orbify demo: the bundled example, {self.group}, budget {self.budget}, init {self.init}", ""]
+        lines += markdown_table(header, rows) + [""]
+        lines += [f"- {note}" for note in self.notes]
+        return "\n".join(lines) + "\n"
+
+    def to_dict(self) -> dict:
+        """JSON-ready figures (the tuning history included)."""
+        return {
+            "group": self.group, "budget": self.budget, "init": self.init, "seconds": self.seconds,
+            "columns": [asdict(figures) for figures in self.columns],
+            "angles_degrees": list(self.angles),
+            "accuracy_by_angle": {name: list(values) for name, values in self.accuracy_by_angle.items()},
+            "tuning": asdict(self.tuning),
+            "files": {role: str(path) for role, path in self.files.items()},
+            "notes": list(self.notes),
+        }
+
+
+def run_demo(out_dir: str | Path, *, force: bool = False, progress: bool = True) -> DemoResult:
+    """Run the whole job on the bundled example and leave its files in ``out_dir``.
+
+    Steps: convert the example CNN under :data:`DEMO_GROUP` with the settings of the shipped recipe
+    :data:`RECIPE`, check it, tune it by distillation on :data:`TRAIN_TILES` upright tiles (the
+    recipe's tuning settings, the tiles' labels added), check it again, export it as a pt2 program,
+    then measure the original, converted, tuned and exported models on fresh tiles.
+    ``out_dir`` is created if needed; the files of :data:`FILES` and :data:`PLOTS` are written in it
+    (plots only when matplotlib is installed). With ``progress`` each step is reported on the
+    terminal. The run is repeatable with the same software and thread count: every random draw is
+    seeded, and the caller's torch random state is left as it was.
+
+    Raises :class:`~orbify.errors.OutputError` before any work when ``out_dir`` is a file or one
+    of the files exists and ``force`` is false.
+    """
+    started = time.perf_counter()
+    folder = Path(out_dir)
+    _prepare_folder(folder, force)
+    log = _Log(progress)
+    with torch.random.fork_rng():
+        torch.manual_seed(0)
+        return _Demo(folder, force, log, started).run()
+
+
+class _Demo:
+    """One demo run; :meth:`run` does the steps in order."""
+
+    def __init__(self, folder: Path, force: bool, log: "_Log", started: float):
+        self.folder = folder
+        self.force = force
+        self.log = log
+        self.started = started
+        self.group: Group = parse_group(DEMO_GROUP)
+        self.files: dict[str, Path] = {}
+        self.notes: list[str] = []
+
+    def path(self, role: str) -> Path:
+        path = self.folder / {**FILES, **PLOTS}[role]
+        self.files[role] = path
+        return path
+
+    def run(self) -> DemoResult:
+        log, group = self.log, self.group
+        with log.step("loading the example model and drawing tiles"):
+            source = load_source(EXAMPLE_SOURCE)
+            original = source.module
+            recipe = load_recipe(RECIPE)
+            options = merge_options(recipe, {"group": group.name, "init": DEMO_INIT})
+            size = options.pop("input_size")
+            self.budget, self.init = options["budget"], options["init"]
+            train_images, train_labels = make_tiles(TRAIN_TILES, split="upright", size=size, seed=SEEDS["train"])
+            self.upright = make_tiles(EVALUATION_TILES, split="upright", size=size, seed=SEEDS["upright"])
+            self.field = make_tiles(EVALUATION_TILES, split="any", size=size, seed=SEEDS["any"])
+        calibration = train_images[:CALIBRATION_TILES] if self.init == "calibrated" else None
+        how = f"init {self.init}" + (f" on {CALIBRATION_TILES} unlabeled upright tiles" if calibration is not None else "")
+        with log.step(f"converting to {group.name} (recipe {recipe.name!r}, budget {options['budget']}, {how})"):
+            converted, plan = convert(original, example_input=train_images[:1], calibration=calibration, **options)
+        self.notes.append(f"converted with {how}")
+        with log.step("checking the converted model"):
+            report = self.check(converted, original, plan, "converted")
+            save(converted, plan, self.path("converted"), reference=source.reference, recipe=recipe.name,
+                 check=report.to_dict(), force=self.force)
+        with log.step("measuring the original and the converted model"):
+            columns = [self.figures("original", original), self.figures("converted", converted)]
+            by_angle = {"original": self.accuracy_by_angle(original),
+                        "converted": self.accuracy_by_angle(converted)}
+        settings = merge_options(recipe, {}, "tune")
+        log.say(f"tuning: {settings['epochs']} epochs of distillation on {TRAIN_TILES} upright tiles, "
+                f"teacher: the original's {settings['view_combination']} view")
+        tuned = copy.deepcopy(converted)
+        with log.step("tuning"):
+            tuning = tune(tuned, original, group, train_images, train_labels, progress=log.enabled, device="cpu",
+                          **settings)
+        with log.step("checking the tuned model"):
+            report = self.check(tuned, original, plan, "tuned")
+            save(tuned, plan, self.path("tuned"), reference=source.reference, recipe=recipe.name,
+                 check=report.to_dict(), force=self.force)
+        with log.step("exporting the tuned model (pt2)"):
+            export_model(tuned, train_images[:1], self.path("exported"), "pt2", force=self.force)
+            exported = torch.export.load(self.files["exported"]).module()
+        with log.step("measuring the tuned and the exported model"):
+            columns += [self.figures("tuned", tuned), self.figures("exported", exported, bake_model(tuned))]
+            by_angle["tuned"] = self.accuracy_by_angle(tuned)
+        with log.step("writing the table and plots"):
+            self.write_plots(self.result(tuple(columns), by_angle, tuning), report)
+            table, figures = self.path("results_md"), self.path("results_json")
+            result = self.result(tuple(columns), by_angle, tuning)
+            write_text(table, result.markdown(), force=self.force)
+            write_json(figures, result.to_dict(), force=self.force)
+        return result
+
+    def result(self, columns, by_angle, tuning) -> DemoResult:
+        angles = tuple(range(0, 360, ANGLE_STEP_DEGREES))
+        return DemoResult(self.folder, self.group.name, self.budget, self.init, columns, angles, by_angle, tuning,
+                          dict(self.files), time.perf_counter() - self.started, tuple(self.notes))
+
+    # -- measuring ------------------------------------------------------------------------------------------
+    def check(self, converted: nn.Module, original: nn.Module, plan, name: str) -> CheckReport:
+        images, labels = self.upright
+        report = check_model(converted, original, plan, ImageSet(images[:CHECK_TILES], labels[:CHECK_TILES]))
+        write_text(self.path(f"check_{name}_md"), check_markdown(report), force=self.force)
+        write_json(self.path(f"check_{name}_json"), report.to_dict(), force=self.force)
+        return report
+
+    @torch.no_grad()
+    def figures(self, name: str, model: nn.Module, structure: nn.Module | None = None) -> ModelFigures:
+        """Measure ``model`` as it is (in eval mode, or an exported program's module) on the demo's tiles.
+
+        Parameters and MACs are counted on ``structure`` when given (the baked model an exported
+        program was made from: an exported program cannot be switched to eval mode for counting).
+        """
+        structure = structure if structure is not None else model
+        images, labels = self.upright
+        with parametrize.cached():
+            views = torch.cat([view_logits(model, self.group, chunk) for chunk in images.split(TIMING_BATCH)], 1)
+            moved = (views.argmax(-1) == labels).double().mean(1)
+            upright = views[0]
+            invariance = max(float((view - upright).norm() / upright.norm()) for view in views[1:])
+            return ModelFigures(
+                name=name,
+                upright_accuracy=float(moved[0]),
+                any_accuracy=_accuracy(model, *self.field),
+                moved_accuracy=float(moved.mean()),
+                worst_moved_accuracy=float(moved.min()),
+                invariance_error=invariance,
+                params=count_params(structure),
+                macs=count_macs(structure, images[:1]),
+                ms_per_image=_milliseconds_per_image(model, images[:TIMING_BATCH]),
+            )
+
+    @torch.no_grad()
+    def accuracy_by_angle(self, model: nn.Module) -> tuple[float, ...]:
+        """Accuracy on :data:`ANGLE_TILES` upright tiles rotated by every multiple of :data:`ANGLE_STEP_DEGREES`."""
+        images, labels = (tensor[:ANGLE_TILES] for tensor in self.upright)
+        with parametrize.cached():
+            return tuple(_accuracy(model, rotate_images(images, math.radians(angle)), labels)
+                         for angle in range(0, 360, ANGLE_STEP_DEGREES))
+
+    # -- plots -----------------------------------------------------------------------------------------------
+    def write_plots(self, result: DemoResult, report: CheckReport) -> None:
+        try:
+            import matplotlib
+        except ImportError:
+            self.notes.append("plots skipped: matplotlib is not installed (pip install 'orbify[plot]')")
+            return
+        matplotlib.use("Agg")
+        import matplotlib.pyplot as plt
+
+        plot_folder = self.folder / "plots"
+        plot_folder.mkdir(exist_ok=True)
+        for written in plot_check(report, plot_folder, force=self.force):
+            self.files[written.stem] = written
+        self._save_figure(plt, _angle_figure(plt, result), "accuracy_by_angle")
+        self._save_figure(plt, _tuning_figure(plt, result.tuning), "tuning")
+
+    def _save_figure(self, plt, figure, role: str) -> None:
+        buffer = io.BytesIO()
+        figure.savefig(buffer, format="png", dpi=120, bbox_inches="tight")
+        plt.close(figure)
+        atomic_write(self.path(role), lambda stream: stream.write(buffer.getvalue()), force=self.force)
+
+
+def _angle_figure(plt, result: DemoResult):
+    figure, axes = plt.subplots(figsize=(7, 4))
+    for name, values in result.accuracy_by_angle.items():
+        axes.plot(result.angles, [100 * v for v in values], "o-", label=name)
+    axes.set_xticks(list(range(0, 361, 45)))
+    axes.set_xlabel("rotation of the upright tiles (degrees, counter-clockwise)")
+    axes.set_ylabel("accuracy (%)")
+    axes.set_ylim(0, 102)
+    axes.set_title(f"accuracy by angle: the original against the {result.group} model")
+    axes.legend()
+    return figure
+
+
+def _tuning_figure(plt, tuning: TuneResult):
+    figure, axes = plt.subplots(figsize=(7, 4))
+    epochs = [0] + [record.epoch for record in tuning.history]
+    held_out = [tuning.before] + [record.held_out for record in tuning.history]
+    lines = axes.plot(epochs, [100 * e.upright for e in held_out], "o-", label=f"held-out {held_out[0].measure} (%)")
+    axes.set_xlabel("epoch")
+    axes.set_ylabel("accuracy (%)")
+    axes.set_ylim(0, 102)
+    loss_axes = axes.twinx()
+    lines += loss_axes.plot(epochs, [e.loss for e in held_out], "s--", color="tab:red", label="held-out KL (nats)")
+    loss_axes.set_ylabel("KL(teacher ‖ student), nats")
+    loss_axes.set_ylim(bottom=0)
+    axes.set_title("tuning by distillation")
+    axes.legend(lines, [line.get_label() for line in lines], loc="center right")
+    return figure
+
+
+def _milliseconds_per_image(model: nn.Module, images: torch.Tensor) -> float:
+    """Best of :data:`TIMING_REPEATS` timed forward passes over ``images``, per image, after one warm-up."""
+    model(images)
+    best = math.inf
+    for _ in range(TIMING_REPEATS):
+        begin = time.perf_counter()
+        model(images)
+        best = min(best, time.perf_counter() - begin)
+    return 1000 * best / len(images)
+
+
+def _accuracy(model: nn.Module, images: torch.Tensor, labels: torch.Tensor) -> float:
+    """Share of ``images`` whose top logit is the label (the model is used as it is, in eval mode)."""
+    predicted = torch.cat([model(chunk).argmax(-1) for chunk in images.split(TIMING_BATCH)])
+    return float((predicted == labels).double().mean())
+
+
+def _percent(value: float) -> str:
+    return f"{100 * value:.1f} %"
+
+
+def _prepare_folder(folder: Path, force: bool) -> None:
+    """Create ``folder``; refuse when it is a file or, without ``force``, when a demo file exists in it."""
+    if folder.exists() and not folder.is_dir():
+        raise OutputError(f"The demo folder {str(folder)!r} is a file", fix="give a folder path with --out")
+    existing = [folder / name for name in (*FILES.values(), *PLOTS.values()) if (folder / name).exists()]
+    if existing and not force:
+        raise OutputError(f"The demo folder {str(folder)!r} already holds demo files ({existing[0].name}, ...)",
+                          fix="choose another folder with --out, or pass --force to replace them")
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+    except OSError as error:
+        raise OutputError(f"Cannot create the demo folder {str(folder)!r}: {error.strerror or error}",
+                          fix="choose a folder you can write to with --out") from error
+
+
+class _Log:
+    """Prints one line per step with its duration when enabled; silent otherwise."""
+
+    def __init__(self, enabled: bool):
+        self.enabled = enabled
+        self.console = Console(stderr=False)
+
+    def say(self, text: str) -> None:
+        if self.enabled:
+            self.console.print(text, highlight=False)
+
+    @contextmanager
+    def step(self, text: str):
+        begin = time.perf_counter()
+        yield
+        self.say(f"[green]✓[/] {text} ({time.perf_counter() - begin:.1f} s)")

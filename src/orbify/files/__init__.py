@@ -1,0 +1,1 @@
+"""Files in and out: model sources, the converted-file format, and export to plain PyTorch formats."""

@@ -1,0 +1,349 @@
+"""Building a model from a SOURCE string, the way every command accepts it.
+
+A SOURCE is one of, tried in this order:
+
+``torchvision:NAME``
+    A torchvision architecture, e.g. ``torchvision:resnet18``, built with random weights
+    (never downloaded; pretrained weights come from a separate weights file).
+a path to an existing file
+    First offered to the file loaders added with :func:`register_file_loader` (the extension
+    point for orbify's own file formats), then read as a whole model pickled with
+    ``torch.save(model, path)``. Unpickling runs arbitrary code from the file, so that needs
+    ``trust_pickle=True`` (``--trust-pickle`` on the command line).
+``package.module:factory``
+    An importable callable that takes no arguments and returns an ``nn.Module``; ``factory``
+    may be a dotted attribute path such as ``Class.build``.
+
+:func:`load_source` builds the model and optionally loads a weights file into it;
+:func:`rebuild` builds the architecture again from the ``reference`` string it reported.
+"""
+
+from __future__ import annotations
+
+import difflib
+import importlib
+import inspect
+import os
+import re
+import sys
+from collections.abc import Mapping
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Callable
+
+import torch
+from torch import nn
+
+from orbify.errors import CheckpointError, SourceError, TrustError
+from orbify.common.safe_io import PathLike, damaged_file_error, load_torch_weights, unsafe_globals
+
+TORCHVISION_PREFIX = "torchvision:"
+FACTORY_PATTERN = re.compile(r"^(?P<module>[A-Za-z_][\w.]*):(?P<attribute>[A-Za-z_][\w.]*)$")
+_ACCEPTED_FORMS = (
+    "give torchvision:NAME (e.g. torchvision:resnet18), package.module:factory, "
+    "or the path of a model file"
+)
+_LISTED_KEYS = 5
+
+
+@dataclass(frozen=True)
+class LoadedSource:
+    """A model built from a SOURCE.
+
+    ``module`` is in eval mode. ``reference`` rebuilds the architecture with :func:`rebuild`
+    (``'torchvision:resnet18'``, ``'pkg.mod:factory'``); it is ``None`` for a model that only
+    its file can recreate, such as a pickled whole model.
+    """
+
+    module: nn.Module
+    reference: str | None
+
+
+FileClaim = Callable[[Path], bool]
+FileLoader = Callable[[Path], LoadedSource]
+_file_loaders: list[tuple[FileClaim, FileLoader]] = []
+
+
+def register_file_loader(claims: FileClaim, load: FileLoader) -> Callable[[], None]:
+    """Teach :func:`load_source` to read a file format; return a function that undoes it.
+
+    For a SOURCE that names an existing file, loaders are asked in the order they were
+    registered: the first whose ``claims(path)`` is true builds the model with ``load(path)``.
+    ``claims`` should look only at cheap signs (suffix, a magic header) and never raise;
+    ``load`` should read with ``weights_only=True`` and raise :class:`CheckpointError` for a
+    damaged file. Files no loader claims are read as pickled whole models.
+    """
+    entry = (claims, load)
+    _file_loaders.append(entry)
+
+    def unregister() -> None:
+        if entry in _file_loaders:
+            _file_loaders.remove(entry)
+
+    return unregister
+
+
+def load_source(
+    spec: str,
+    *,
+    weights: PathLike | None = None,
+    trust_pickle: bool = False,
+) -> LoadedSource:
+    """Build the model that ``spec`` names, load ``weights`` into it and put it in eval mode.
+
+    ``weights`` is a ``torch.save`` file read with ``weights_only=True``: a state dict, or a
+    dict holding one under ``'state_dict'`` or ``'model'``. Every key and shape must match
+    the model. Raises :class:`SourceError` for a SOURCE that cannot be built,
+    :class:`TrustError` for a pickled model without ``trust_pickle``, and
+    :class:`CheckpointError` for an unreadable or mismatched file.
+    """
+    loaded = _build(spec, trust_pickle=trust_pickle)
+    if weights is not None:
+        load_weights_file(loaded.module, weights)
+    loaded.module.eval()
+    return loaded
+
+
+def rebuild(reference: str) -> nn.Module:
+    """Build the architecture that a :class:`LoadedSource` ``reference`` names, in eval mode.
+
+    The weights are freshly initialised: no weights are read or downloaded.
+    """
+    if reference.startswith(TORCHVISION_PREFIX):
+        module = _build_torchvision(reference[len(TORCHVISION_PREFIX):])
+    elif FACTORY_PATTERN.match(reference):
+        module = _build_factory(reference)
+    else:
+        raise SourceError(
+            f"{reference!r} is not a reference that can be rebuilt",
+            fix="use torchvision:NAME or package.module:factory",
+        )
+    return module.eval()
+
+
+def _build(spec: str, *, trust_pickle: bool) -> LoadedSource:
+    """Dispatch on the form of ``spec`` (see the module docstring for the order)."""
+    if not spec.strip():
+        raise SourceError("No model source was given", fix=_ACCEPTED_FORMS)
+    if spec.startswith(TORCHVISION_PREFIX):
+        return LoadedSource(rebuild(spec), spec.lower())
+    path = Path(spec)
+    if path.is_file():
+        return _load_file(path, trust_pickle=trust_pickle)
+    if FACTORY_PATTERN.match(spec):
+        return LoadedSource(rebuild(spec), spec)
+    if path.exists():
+        raise SourceError(f"The model source {spec!r} is a directory, not a file", fix=_ACCEPTED_FORMS)
+    if path.suffix or "/" in spec or "\\" in spec:
+        raise SourceError(f"The model file {spec!r} does not exist", fix="check the path; " + _ACCEPTED_FORMS)
+    raise SourceError(f"{spec!r} is not a model source orbify understands", fix=_ACCEPTED_FORMS)
+
+
+def _build_torchvision(name: str) -> nn.Module:
+    """``torchvision.models.get_model(name)`` with every ``weights*`` argument set to None."""
+    try:
+        import torchvision.models
+    except ImportError as error:
+        raise SourceError(
+            "torchvision:NAME sources need the torchvision package, which is not installed",
+            fix="pip install torchvision",
+        ) from error
+    known = torchvision.models.list_models()
+    if name.lower() not in known:
+        close = difflib.get_close_matches(name.lower(), known, n=5)
+        hint = f"close names: {', '.join(close)}" if close else "see torchvision.models.list_models()"
+        raise SourceError(
+            f"torchvision has no model named {name!r}", where=TORCHVISION_PREFIX + name, fix=hint
+        )
+    builder = torchvision.models.get_model_builder(name.lower())
+    no_download = {
+        parameter: None
+        for parameter in inspect.signature(builder).parameters
+        if parameter == "weights" or parameter.startswith("weights_")
+    }
+    return builder(**no_download)
+
+
+def _import_with_working_directory(module_name: str):
+    """Import a module the way ``python -m`` would: the working directory is searched too.
+
+    Console scripts leave the working directory off ``sys.path``; a user's own model file in the
+    folder they run ``orbify`` from should still be found.
+    """
+    here = os.getcwd()
+    if here in sys.path or "" in sys.path:
+        return importlib.import_module(module_name)
+    sys.path.insert(0, here)
+    try:
+        return importlib.import_module(module_name)
+    finally:
+        sys.path.remove(here)
+
+
+def _build_factory(spec: str) -> nn.Module:
+    """Import ``package.module`` and call ``factory()``; it must return an ``nn.Module``."""
+    module_name, attribute_path = spec.split(":", 1)
+    try:
+        namespace = _import_with_working_directory(module_name)
+    except ModuleNotFoundError as error:
+        if error.name is not None and (module_name == error.name or module_name.startswith(error.name + ".")):
+            raise SourceError(
+                f"Cannot import the module {module_name!r} of the model source {spec!r}",
+                fix="install the package, or run from the folder that holds it "
+                "or add that folder to PYTHONPATH",
+            ) from error
+        raise SourceError(
+            f"Importing {module_name!r} failed because it needs the missing module {error.name!r}",
+            where=spec,
+            fix=f"install the package that provides {error.name!r}",
+        ) from error
+    except Exception as error:
+        raise SourceError(
+            f"Importing {module_name!r} raised {type(error).__name__}: {error}",
+            where=spec,
+            fix="fix the error in that module",
+        ) from error
+    factory: object = namespace
+    for part in attribute_path.split("."):
+        if not hasattr(factory, part):
+            names = [name for name in dir(factory) if not name.startswith("_")]
+            close = difflib.get_close_matches(part, names, n=5)
+            hint = f"close names: {', '.join(close)}" if close else "check the name after the colon"
+            raise SourceError(f"{module_name!r} has no attribute {attribute_path!r}", where=spec, fix=hint)
+        factory = getattr(factory, part)
+    if not callable(factory):
+        raise SourceError(
+            f"{attribute_path!r} in {module_name!r} is a {type(factory).__name__}, not a callable factory",
+            where=spec,
+            fix="name a function or class that builds the model when called without arguments",
+        )
+    try:
+        model = factory()
+    except Exception as error:
+        raise SourceError(
+            f"Calling the model factory {spec!r} raised {type(error).__name__}: {error}",
+            fix="the factory must build the model when called without arguments; "
+            "wrap it in a function that supplies them",
+        ) from error
+    if not isinstance(model, nn.Module):
+        raise SourceError(
+            f"The model factory {spec!r} returned a {type(model).__name__}, not a torch.nn.Module",
+            fix="return the model itself",
+        )
+    return model
+
+
+def _load_file(path: Path, *, trust_pickle: bool) -> LoadedSource:
+    """A registered file format, or else a pickled whole model (only with ``trust_pickle``)."""
+    for claims, load in _file_loaders:
+        if claims(path):
+            return load(path)
+    if not trust_pickle:
+        refused = unsafe_globals(path)
+        if refused:
+            raise TrustError(
+                f"The model file {str(path)!r} is a pickled Python object ({', '.join(refused[:5])}); "
+                "loading it runs arbitrary code stored in the file",
+                fix="pass --trust-pickle (trust_pickle=True) only if you trust where the file came from; "
+                "otherwise give the architecture as SOURCE and a state dict with --weights",
+            )
+        content = load_torch_weights(path, what="model file")
+        raise _not_a_model(path, content)
+    try:
+        content = torch.load(path, weights_only=False, map_location="cpu")
+    except (ModuleNotFoundError, AttributeError) as error:
+        raise SourceError(
+            f"The pickled model {str(path)!r} refers to code that cannot be imported ({error})",
+            fix="make the package that defines the model's classes importable "
+            "(install it or add its folder to PYTHONPATH)",
+        ) from error
+    except Exception as error:
+        raise damaged_file_error(path, "model file", error) from error
+    if not isinstance(content, nn.Module):
+        raise _not_a_model(path, content)
+    return LoadedSource(content, None)
+
+
+def _not_a_model(path: Path, content: object) -> SourceError:
+    """The error for a model file that holds something other than a model."""
+    if isinstance(content, Mapping):
+        return SourceError(
+            f"The model file {str(path)!r} holds weights (a dict), not a model",
+            fix="give the architecture as SOURCE (torchvision:NAME or package.module:factory) "
+            "and this file with --weights",
+        )
+    return SourceError(
+        f"The model file {str(path)!r} holds a {type(content).__name__}, not a torch.nn.Module",
+        fix=_ACCEPTED_FORMS,
+    )
+
+
+def load_weights_file(module: nn.Module, weights: PathLike) -> None:
+    """Load a weights file into ``module`` in place, requiring every key and shape to match.
+
+    The file holds a state dict, or a dict with one under ``'state_dict'`` or ``'model'``.
+    Raises :class:`CheckpointError` listing up to five missing, unexpected and mismatched keys;
+    the module may then hold part of the file's weights and should be discarded.
+    """
+    state = _unwrap_state_dict(load_torch_weights(weights), weights)
+    expected = module.state_dict()
+    mismatched = [
+        key
+        for key, value in state.items()
+        if isinstance(expected.get(key), torch.Tensor)
+        and (not isinstance(value, torch.Tensor) or value.shape != expected[key].shape)
+    ]
+    loadable = {key: value for key, value in state.items() if key not in mismatched}
+    # load_state_dict knows which keys a module may lack (e.g. batch-norm counters of old files).
+    result = module.load_state_dict(loadable, strict=False)
+    missing = [key for key in result.missing_keys if key not in mismatched]
+    unexpected = list(result.unexpected_keys)
+    if not (missing or unexpected or mismatched):
+        return
+    parts = []
+    if missing:
+        parts.append(_key_list("missing from the file", missing, lambda key: _shape(expected[key])))
+    if unexpected:
+        parts.append(_key_list("not in the model", unexpected, lambda key: _shape(state[key])))
+    if mismatched:
+        parts.append(
+            _key_list(
+                "with a different shape",
+                mismatched,
+                lambda key: f"model {_shape(expected[key])}, file {_shape(state[key])}",
+            )
+        )
+    raise CheckpointError(
+        f"The weights file {str(weights)!r} does not fit the model: " + "; ".join(parts),
+        fix="check that SOURCE is the architecture these weights were saved from "
+        "(same model and number of classes)",
+    )
+
+
+def _unwrap_state_dict(content: object, weights: PathLike) -> Mapping[str, object]:
+    """The state dict in a loaded weights file: the file itself or its 'state_dict'/'model' entry."""
+    if isinstance(content, Mapping):
+        for key in ("state_dict", "model"):
+            if isinstance(content.get(key), Mapping):
+                return content[key]
+        if all(isinstance(key, str) for key in content):
+            return content
+    raise CheckpointError(
+        f"The weights file {str(weights)!r} holds a {type(content).__name__} that is not a state dict",
+        fix="save it with torch.save(model.state_dict(), path), or as a dict with the state dict under "
+        "'state_dict' or 'model'",
+    )
+
+
+def _key_list(title: str, keys: list[str], describe: Callable[[str], str]) -> str:
+    """'n title (key [shape], ...)' with at most five keys shown."""
+    shown = ", ".join(f"{key} {describe(key)}" for key in keys[:_LISTED_KEYS])
+    more = f", and {len(keys) - _LISTED_KEYS} more" if len(keys) > _LISTED_KEYS else ""
+    return f"{len(keys)} {title} ({shown}{more})"
+
+
+def _shape(value: object) -> str:
+    """A tensor's shape as '[a, b]', or the type of a non-tensor."""
+    if isinstance(value, torch.Tensor):
+        return str(list(value.shape))
+    return f"({type(value).__name__})"

@@ -1,0 +1,249 @@
+"""The op rule table: what every graph op does to a layout (design.md section 5).
+
+A rule takes a :class:`Step` (the node, the layouts of its tensor inputs and the conversion
+context) and returns the layout of the node's output, ``None`` for non-tensor values. Rules that
+build tied layers (conv, linear, norms) ask the context to replace the module. Unknown ops stop
+the conversion with an :class:`~orbify.errors.UnsupportedOpError` naming the node.
+
+To support a new op, add one entry to :data:`MODULE_RULES`, :data:`FUNCTION_RULES` or
+:data:`METHOD_RULES` (see DEVELOPERS.md).
+"""
+
+from __future__ import annotations
+
+import operator
+import sys
+from dataclasses import dataclass
+from typing import TYPE_CHECKING, Callable
+
+import torch
+import torch.nn.functional as F
+from torch import fx, nn
+
+from orbify.errors import UnsupportedOpError
+from orbify.graph.tracing import describe, shape
+from orbify.symmetry.layouts import Flat, Layout, Orbit, Plain
+
+if TYPE_CHECKING:
+    from orbify.conversion.converter import Converter
+
+
+@dataclass
+class Step:
+    node: fx.Node
+    inputs: list[Layout | None]   # layouts of node.all_input_nodes, in order
+    ctx: "Converter"
+
+    @property
+    def layout(self) -> Layout | None:
+        """Layout of the first tensor input."""
+        return next((layout for layout in self.inputs if layout is not None), None)
+
+    def arg_layout(self, arg) -> Layout | None:
+        return self.ctx.layouts.get(arg) if isinstance(arg, fx.Node) else None
+
+    def refuse(self, what: str, fix: str) -> UnsupportedOpError:
+        seen = ", ".join(str(layout) for layout in self.inputs if layout is not None) or "none"
+        return UnsupportedOpError(f"{what} (input layouts: {seen})", where=describe(self.node), fix=fix)
+
+
+Rule = Callable[[Step], "Layout | None"]
+
+CONVERT_UP_TO = ("convert only up to the node before it (stop_at=... / --stop-at), which pools the orbit there "
+                 "and keeps the rest plain, or register a rule for this op (DEVELOPERS.md)")
+
+
+def passthrough(step: Step) -> Layout | None:
+    """Pointwise ops, pooling, dropout, upsampling: the layout is unchanged."""
+    return step.layout
+
+
+def elementwise(step: Step) -> Layout | None:
+    """add / mul / sub / div of tensors: equal layouts, or one operand broadcast over channels."""
+    tensors = [(arg, step.arg_layout(arg)) for arg in step.node.args if isinstance(arg, fx.Node)]
+    layouts = [layout for _, layout in tensors if layout is not None]
+    if not layouts:
+        return None
+    varying = [l for (arg, l) in tensors if l is not None and not broadcasts_channel(arg)]
+    if not varying:
+        return layouts[0]
+    first = varying[0]
+    if any(l != first for l in varying[1:]):
+        raise step.refuse("An elementwise op combines tensors of different layouts",
+                          "make both operands come from layers of the same width, or " + CONVERT_UP_TO)
+    return first
+
+
+def broadcasts_channel(node: fx.Node) -> bool:
+    """True when ``node``'s value has one channel (or none) and so broadcasts over every channel."""
+    s = shape(node)
+    return s is not None and (len(s) < 2 or s[1] == 1)
+
+
+def concatenate(step: Step) -> Layout | None:
+    dim = step.node.kwargs.get("dim", step.node.args[1] if len(step.node.args) > 1 else 0)
+    parts = [step.arg_layout(a) for a in step.node.args[0]]
+    rank = len(shape(step.node) or ())
+    if dim not in (1, 1 - rank):
+        raise step.refuse(f"Concatenation along dim {dim} (only the channel dim 1 keeps layouts)", CONVERT_UP_TO)
+    if all(isinstance(p, Orbit) for p in parts):
+        return Orbit(sum(p.orbits for p in parts))
+    if all(isinstance(p, Plain) for p in parts):
+        return Plain(sum(p.channels for p in parts))
+    raise step.refuse("Concatenation of orbit and plain channels", CONVERT_UP_TO)
+
+
+def flatten(step: Step) -> Layout | None:
+    """flatten(x, 1) / x.view(B, -1): a spatial map becomes a flat layout, a 1×1 map keeps its layout."""
+    source = step.node.args[0]
+    in_shape = shape(source)
+    out_shape = shape(step.node)
+    layout = step.layout
+    if in_shape is None or out_shape is None or layout is None:
+        return layout
+    if len(out_shape) != 2 or out_shape[0] != in_shape[0]:
+        raise step.refuse(f"A reshape from {in_shape} to {out_shape} moves channels across the batch axis",
+                          "only flatten from dim 1 on is supported; " + CONVERT_UP_TO)
+    if len(in_shape) == 2:
+        return layout
+    height, width = (in_shape[2], in_shape[3]) if len(in_shape) == 4 else (in_shape[2], 1)
+    if height * width == 1:
+        return layout
+    if isinstance(layout, Flat) or height != width:
+        raise step.refuse(f"Flattening a {height}×{width} map", "flatten square spatial maps only, or " + CONVERT_UP_TO)
+    return Flat(layout, height, width)
+
+
+def reshape(step: Step) -> Layout | None:
+    """view/reshape: allowed as a flatten, or when it leaves the channel axis alone."""
+    in_shape, out_shape = shape(step.node.args[0]), shape(step.node)
+    if in_shape is not None and out_shape is not None and in_shape[:2] == out_shape[:2]:
+        return step.layout
+    if out_shape is not None and len(out_shape) == 2:
+        return flatten(step)
+    raise step.refuse(f"A reshape from {in_shape} to {out_shape} splits or shuffles channels",
+                      "reshape only at orbit granularity (keep the channel axis intact), or " + CONVERT_UP_TO)
+
+
+def spatial_mean(step: Step) -> Layout | None:
+    """x.mean((2, 3)) and similar global pools over spatial axes keep the layout."""
+    dims = step.node.kwargs.get("dim", step.node.args[1] if len(step.node.args) > 1 else None)
+    rank = len(shape(step.node.args[0]) or ())
+    dims = (dims,) if isinstance(dims, int) else tuple(dims or ())
+    if dims and all(d % rank >= 2 for d in dims):
+        return step.layout
+    raise step.refuse(f"A reduction over dims {dims} mixes channels", CONVERT_UP_TO)
+
+
+def no_tensor(step: Step) -> None:
+    """size(), shape, getattr: not a tensor in a layout."""
+    return None
+
+
+def getitem(step: Step) -> Layout | None:
+    if shape(step.node) is None:
+        return None
+    raise step.refuse("Indexing a tensor", CONVERT_UP_TO)
+
+
+def conv(step: Step) -> Layout:
+    return step.ctx.convert_conv(step)
+
+
+def linear(step: Step) -> Layout:
+    return step.ctx.convert_linear(step)
+
+
+def batch_norm(step: Step) -> Layout:
+    return step.ctx.convert_batch_norm(step)
+
+
+def affine_norm(step: Step) -> Layout:
+    return step.ctx.convert_affine_norm(step)
+
+
+def orbit_pool(step: Step) -> Layout:
+    if not isinstance(step.layout, Orbit):
+        raise step.refuse("An orbit pool needs an orbit layout", "pool only after converted layers")
+    return Plain(step.layout.orbits)
+
+
+def _add_torchvision_rules() -> None:
+    """Rules for torchvision's own ops, added once torchvision is in use (it is optional and slow to import)."""
+    if "torchvision" not in sys.modules or _torchvision_added:
+        return
+    from torchvision.ops import StochasticDepth, stochastic_depth
+
+    MODULE_RULES[StochasticDepth] = passthrough
+    FUNCTION_RULES[stochastic_depth] = passthrough
+    _torchvision_added.append(True)
+
+
+_torchvision_added: list[bool] = []
+
+
+_POINTWISE_MODULES = (nn.ReLU, nn.ReLU6, nn.SiLU, nn.GELU, nn.Hardswish, nn.Hardsigmoid, nn.Sigmoid, nn.Tanh,
+                      nn.LeakyReLU, nn.ELU, nn.Mish, nn.PReLU, nn.Dropout, nn.Dropout2d, nn.Identity, nn.MaxPool2d,
+                      nn.AvgPool2d, nn.AdaptiveAvgPool2d, nn.AdaptiveMaxPool2d, nn.Upsample,
+                      nn.UpsamplingNearest2d, nn.UpsamplingBilinear2d)
+
+MODULE_RULES: dict[type, Rule] = {
+    **{cls: passthrough for cls in _POINTWISE_MODULES},
+    nn.Conv2d: conv,
+    nn.ConvTranspose2d: conv,
+    nn.Linear: linear,
+    nn.BatchNorm1d: batch_norm,
+    nn.BatchNorm2d: batch_norm,
+    nn.GroupNorm: affine_norm,
+    nn.LayerNorm: affine_norm,
+    nn.Flatten: flatten,
+}
+
+FUNCTION_RULES: dict[object, Rule] = {
+    **{fn: passthrough for fn in (F.relu, F.relu6, F.silu, F.gelu, F.hardswish, F.hardsigmoid, F.leaky_relu, F.elu,
+                                  torch.relu, torch.sigmoid, torch.tanh, F.dropout, F.max_pool2d, F.avg_pool2d,
+                                  F.adaptive_avg_pool2d, F.adaptive_max_pool2d, F.interpolate, torch.clone)},
+    **{fn: elementwise for fn in (operator.add, operator.iadd, operator.mul, operator.imul, operator.sub,
+                                  operator.truediv, torch.add, torch.mul, torch.sub)},
+    torch.cat: concatenate,
+    torch.flatten: flatten,
+    torch.mean: spatial_mean,
+    operator.getitem: getitem,
+    getattr: no_tensor,
+}
+
+METHOD_RULES: dict[str, Rule] = {
+    **{name: passthrough for name in ("relu", "relu_", "sigmoid", "sigmoid_", "tanh", "clone", "contiguous")},
+    **{name: elementwise for name in ("add", "add_", "mul", "mul_", "sub", "div")},
+    "flatten": flatten,
+    "view": reshape,
+    "reshape": reshape,
+    "mean": spatial_mean,
+    "size": no_tensor,
+    "dim": no_tensor,
+}
+
+
+
+def rule_for(node: fx.Node, module: nn.Module | None) -> Rule | None:
+    """The rule of a node: by module class (most derived first), function or method name."""
+    _add_torchvision_rules()
+    if node.op == "call_module":
+        for cls in type(module).__mro__:
+            if cls in MODULE_RULES:
+                return MODULE_RULES[cls]
+        return None
+    if node.op == "call_function":
+        return FUNCTION_RULES.get(node.target)
+    if node.op == "call_method":
+        return METHOD_RULES.get(node.target)
+    return None
+
+
+def _register_orbify_modules() -> None:
+    from orbify.layers.tied import OrbitPool
+
+    MODULE_RULES[OrbitPool] = orbit_pool
+
+
+_register_orbify_modules()

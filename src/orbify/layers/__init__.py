@@ -1,0 +1,1 @@
+"""Tied layers on torch.nn.utils.parametrize, and baking them back into plain modules."""

@@ -1,0 +1,230 @@
+"""Tied modules: ordinary torch modules whose parameters are tied by the group.
+
+Conv, transposed conv and linear layers stay ``nn.Conv2d`` / ``nn.ConvTranspose2d`` /
+``nn.Linear``; their weight (and bias) get a :class:`~orbify.symmetry.tying.TiedWeight` (or, for a spatial
+kernel under an approximate group such as c8, a :class:`~orbify.symmetry.tying.ResampledWeight`)
+parametrization (``torch.nn.utils.parametrize``), so the module tree, hooks and summaries keep
+working and ``parametrize.cached()`` serves inference. Assigning a full-size weight to a tied
+module stores its orbit average. Batch norm shares its statistics across the slots of an orbit
+(:class:`OrbitBatchNorm`); :class:`OrbitPool` averages (or maxes) the slots away.
+:func:`bake` turns any of them back into the plain module it stands for.
+"""
+
+from __future__ import annotations
+
+import torch
+from torch import nn
+from torch.nn.utils import parametrize
+
+from orbify.errors import WidthError
+from orbify.symmetry.groups import Group
+from orbify.symmetry.layouts import Layout, Orbit, Plain
+from orbify.symmetry.tying import TiedPerOrbit, tied_weight
+
+Conv = nn.Conv1d | nn.Conv2d | nn.ConvTranspose2d
+
+
+def conv_fibre(group: Group, in_layout: Layout, out_layout: Layout, groups: int, where: str = "") -> Layout:
+    """Layout of one conv group's input channels (the weight's second axis).
+
+    Grouped convs are tied when every group holds whole orbits, or when every group holds a
+    single channel on both sides (depthwise: a group then moves with its channel).
+    """
+    if groups == 1:
+        return in_layout
+    n = group.order
+    in_per_group = in_layout.size(group) // groups
+    out_per_group = out_layout.size(group) // groups
+    out_moves = isinstance(out_layout, Orbit)
+    if isinstance(in_layout, Plain) and (not out_moves or out_per_group % n == 0):
+        return Plain(in_per_group)
+    if isinstance(in_layout, Orbit):
+        if in_per_group % n == 0 and (not out_moves or out_per_group % n == 0):
+            return Orbit(in_per_group // n)
+        if out_moves and in_per_group == 1 and out_per_group == 1:
+            return Plain(1)
+    raise WidthError(
+        f"A grouped conv with {groups} groups ({in_per_group} in / {out_per_group} out channels each) "
+        f"cannot be tied from {in_layout} to {out_layout} under {group.name}: each group must hold whole "
+        f"orbits of {n} channels, or exactly one channel on both sides",
+        where=where or None,
+        fix="merge groups so each holds a multiple of |G| channels (the converter does this and records it), "
+            "or choose a group whose order divides the group width",
+    )
+
+
+def _register(module: nn.Module, name: str, parametrization: nn.Module) -> None:
+    parametrize.register_parametrization(module, name, parametrization, unsafe=True)
+
+
+def _tie_bias(module: nn.Module, group: Group, out_layout: Layout) -> None:
+    if getattr(module, "bias", None) is not None and isinstance(out_layout, Orbit):
+        _register(module, "bias", TiedPerOrbit(group, out_layout.orbits))
+
+
+def tie_conv(conv: Conv, group: Group, in_layout: Layout, out_layout: Layout, where: str = "") -> Conv:
+    """Tie ``conv`` in place from ``in_layout`` to ``out_layout``; its current weight is projected.
+
+    ``conv`` must already have the channel counts of the layouts. Plain → plain 1×1 convs need no
+    tying and are returned untouched. Under an approximate group (c8, d8, ...) spatial kernels are
+    tied through filter resampling by ``group.resampling`` (:class:`~orbify.symmetry.tying.ResampledWeight`);
+    the layer is then equivariant only approximately, but still exactly to quarter turns and the mirror.
+    """
+    transposed = isinstance(conv, nn.ConvTranspose2d)
+    channels_in, channels_out = (conv.in_channels, conv.out_channels)
+    if channels_in != in_layout.size(group) or channels_out != out_layout.size(group):
+        raise WidthError(f"{type(conv).__name__} has {channels_in}→{channels_out} channels but the layouts "
+                         f"{in_layout}→{out_layout} need {in_layout.size(group)}→{out_layout.size(group)}",
+                         where=where or None, fix="resize the layer to the layout widths before tying it")
+    if transposed and conv.groups != 1:
+        raise WidthError("Grouped transposed convs are not tied", where=where or None,
+                         fix="use groups=1 or keep this layer after an orbit pool")
+    fibre = conv_fibre(group, in_layout, out_layout, conv.groups, where)
+    tying = tied_weight(group, out_layout, fibre, tuple(conv.kernel_size), transposed)
+    if not tying.is_trivial:
+        _register(conv, "weight", tying)
+    _tie_bias(conv, group, out_layout)
+    return conv
+
+
+def tie_linear(linear: nn.Linear, group: Group, in_layout: Layout, out_layout: Layout, where: str = "") -> nn.Linear:
+    """Tie ``linear`` in place (orbit→orbit, orbit→plain, flat→plain/orbit, plain→orbit)."""
+    if linear.in_features != in_layout.size(group) or linear.out_features != out_layout.size(group):
+        raise WidthError(f"Linear has {linear.in_features}→{linear.out_features} features but the layouts "
+                         f"{in_layout}→{out_layout} need {in_layout.size(group)}→{out_layout.size(group)}",
+                         where=where or None, fix="resize the layer to the layout widths before tying it")
+    tying = tied_weight(group, out_layout, in_layout, ())
+    if not tying.is_trivial:
+        _register(linear, "weight", tying)
+    _tie_bias(linear, group, out_layout)
+    return linear
+
+
+def tie_affine(norm: nn.Module, group: Group, layout: Layout) -> nn.Module:
+    """Tie the per-channel affine parameters of a LayerNorm/GroupNorm over an orbit layout."""
+    if isinstance(layout, Orbit):
+        for name in ("weight", "bias"):
+            if getattr(norm, name, None) is not None:
+                _register(norm, name, TiedPerOrbit(group, layout.orbits))
+    return norm
+
+
+class OrbitBatchNorm(nn.modules.batchnorm._BatchNorm):
+    """Batch norm whose statistics and affine parameters are shared by the |G| slots of each orbit.
+
+    ``num_features`` counts orbits; the input has ``num_features·order`` channels, and may be
+    (B, C), (B, C, L) or (B, C, H, W). It normalises the reshaped (B, orbits, order·rest) tensor,
+    which keeps the layer equivariant in training mode as well as in eval mode.
+    """
+
+    def __init__(self, orbits: int, order: int, spatial_dims: int = 2, **kwargs):
+        super().__init__(orbits, **kwargs)
+        self.order = order
+        self.spatial_dims = spatial_dims
+
+    def _check_input_dim(self, input: torch.Tensor) -> None:
+        """Called by the base class on the (B, orbits, order·rest) view."""
+        if input.dim() != 3 or input.shape[1] != self.num_features:
+            raise ValueError(f"expected (B, {self.num_features}, L) inside OrbitBatchNorm, got {tuple(input.shape)}")
+
+    def forward(self, input: torch.Tensor) -> torch.Tensor:
+        if input.dim() < 2 or input.shape[1] != self.num_features * self.order:
+            raise ValueError(f"expected {self.num_features * self.order} channels, got shape {tuple(input.shape)}")
+        grouped = input.reshape(input.shape[0], self.num_features, -1)
+        return super().forward(grouped).reshape(input.shape)
+
+    @classmethod
+    def from_plain(cls, bn: nn.modules.batchnorm._BatchNorm, group: Group) -> "OrbitBatchNorm":
+        """The orbit-shared counterpart of ``bn`` (same channel count); statistics and affine averaged per orbit."""
+        n = group.order
+        if bn.num_features % n:
+            raise WidthError(f"{type(bn).__name__} has {bn.num_features} channels, not a multiple of |G|={n}",
+                             fix="use a budget that rounds widths to whole orbits")
+        spatial = {nn.BatchNorm1d: 0, nn.BatchNorm2d: 2, nn.BatchNorm3d: 3}.get(type(bn), 2)
+        out = cls(bn.num_features // n, n, spatial, eps=bn.eps, momentum=bn.momentum, affine=bn.affine,
+                  track_running_stats=bn.track_running_stats)
+        out.load_orbit_average(bn)
+        return out.train(bn.training)
+
+    @torch.no_grad()
+    def load_orbit_average(self, bn: nn.modules.batchnorm._BatchNorm) -> None:
+        """Set statistics and affine from a plain batch norm of ``orbits·order`` channels, averaged per orbit.
+
+        The variance averages the per-slot second moments, so it is the variance of the pooled slots.
+        """
+        def per_orbit(t: torch.Tensor) -> torch.Tensor:
+            return t.reshape(self.num_features, self.order).mean(1)
+
+        if self.affine:
+            self.weight.copy_(per_orbit(bn.weight))
+            self.bias.copy_(per_orbit(bn.bias))
+        if self.track_running_stats and bn.running_mean is not None:
+            mean = per_orbit(bn.running_mean)
+            second = per_orbit(bn.running_var + bn.running_mean**2)
+            self.running_mean.copy_(mean)
+            self.running_var.copy_((second - mean**2).clamp_min(0))
+            self.num_batches_tracked.copy_(bn.num_batches_tracked)
+
+    def extra_repr(self) -> str:
+        return f"{self.num_features} orbits × {self.order} slots, eps={self.eps}, momentum={self.momentum}"
+
+
+class OrbitPool(nn.Module):
+    """Orbit pooling: (B, f·|G|, ...) → (B, f, ...) by the mean or max over each orbit's slots (invariant)."""
+
+    def __init__(self, order: int, mode: str = "mean"):
+        super().__init__()
+        if mode not in ("mean", "max"):
+            raise ValueError(f"orbit pool mode must be 'mean' or 'max', got {mode!r}")
+        self.order = order
+        self.mode = mode
+
+    def forward(self, x: torch.Tensor) -> torch.Tensor:
+        return orbit_pool(x, self.order, self.mode)
+
+    def extra_repr(self) -> str:
+        return f"order={self.order}, mode={self.mode}"
+
+
+def orbit_pool(x: torch.Tensor, order: int, mode: str = "mean") -> torch.Tensor:
+    """Functional orbit pool, the plain-torch form that :func:`bake` leaves in a graph."""
+    slots = x.unflatten(1, (-1, order))
+    return slots.mean(2) if mode == "mean" else slots.amax(2)
+
+
+def bake(module: nn.Module) -> nn.Module:
+    """The plain module a tied module stands for, with expanded values and no parametrizations.
+
+    Parametrized modules are baked in place (and returned); an :class:`OrbitBatchNorm` is replaced
+    by a new ``nn.BatchNorm1d/2d/3d`` over all channels. Other modules are returned unchanged.
+    """
+    if isinstance(module, OrbitBatchNorm):
+        return _bake_batch_norm(module)
+    if parametrize.is_parametrized(module):
+        # parametrize keeps the tensor properties on a class shared by every copy of the module
+        # (deepcopy keeps the class) and deletes them on removal: give this instance its own class
+        # first so that baking one copy leaves the others working.
+        cls = type(module)
+        module.__class__ = type(cls.__name__, cls.__bases__, dict(cls.__dict__))
+        for name in list(module.parametrizations.keys()):
+            parametrize.remove_parametrizations(module, name, leave_parametrized=True)
+    return module
+
+
+@torch.no_grad()
+def _bake_batch_norm(bn: OrbitBatchNorm) -> nn.modules.batchnorm._BatchNorm:
+    kind = {0: nn.BatchNorm1d, 2: nn.BatchNorm2d, 3: nn.BatchNorm3d}[bn.spatial_dims]
+    n = bn.order
+    plain = kind(bn.num_features * n, eps=bn.eps, momentum=bn.momentum, affine=bn.affine,
+                 track_running_stats=bn.track_running_stats)
+    if bn.affine:
+        plain.weight.copy_(bn.weight.repeat_interleave(n))
+        plain.bias.copy_(bn.bias.repeat_interleave(n))
+    if bn.track_running_stats:
+        plain.running_mean.copy_(bn.running_mean.repeat_interleave(n))
+        plain.running_var.copy_(bn.running_var.repeat_interleave(n))
+        plain.num_batches_tracked.copy_(bn.num_batches_tracked)
+    return plain.train(bn.training)
+
+
+__all__ = ["OrbitBatchNorm", "OrbitPool", "bake", "conv_fibre", "orbit_pool", "tie_affine", "tie_conv", "tie_linear"]

@@ -1,0 +1,1 @@
+"""Carrying pretrained weights into tied layers: channel maps, channel matching, batch-norm re-estimation."""

@@ -1,0 +1,1 @@
+"""Proving a converted model: exactness checks, parameter and MAC counts, summaries, diffs and reports."""
