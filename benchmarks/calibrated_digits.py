@@ -10,18 +10,18 @@ random element). Calibration uses the first 512 training images, without labels.
 1. **Before tuning.** For each group (c4, d4) and several seeds of the original: top-1 agreement,
    on the test split, of each converted model with the original's logits averaged over the group,
    and its accuracy on the test split moved by every element. Variants: orbit averaging (the
-   default conversion, channel matching on); the first calibrated version of design.md section 7b
+   default conversion, channel matching on); the first calibrated version of docs/design.md §9.6
    (kept channels by importance, images as given, no norm refit); and the calibrated conversion
    with each improvement added — transformed copies, kept channels by reconstruction error,
    refitted batch norms — then without each of them (the ablation of the final choice).
-2. **Tuning.** Orbit averaging and calibration as starting points for :func:`orbify.tuning.loop`
+2. **Tuning.** Orbit averaging and calibration as starting points for :func:`orbify.tune`
    (distillation from the probability average over the group, no labels, cosine schedule, the
    tuner's defaults otherwise) at three learning rates: accuracy on every orientation after every
    epoch. The claim: calibrated reaches test-time averaging (TTA) within 0.5 points in no more
    epochs than orbit averaging needs to get within 2 points (each at its best learning rate).
 3. **Epoch budgets.** Reading accuracy off one long run flatters nobody: after epoch 6 of a
    15-epoch cosine schedule the learning rate is still high. A practitioner chooses the number of
-   epochs and the schedule anneals over it, so this part runs :func:`orbify.tuning.loop` once per
+   epochs and the schedule anneals over it, so this part runs :func:`orbify.tune` once per
    budget E (cosine over E epochs) and learning rate, for every seed of the original, and reports
    the final accuracy on every element minus TTA, averaged over the seeds. The claim, read here:
    the smallest budget at which calibrated ends within 0.5 points of TTA is no larger than the
@@ -38,8 +38,6 @@ version and thread count.
 
 from __future__ import annotations
 
-import harness  # first: it sets the OpenMP wait policy before torch loads
-
 import json  # noqa: E402
 import resource  # noqa: E402
 import statistics  # noqa: E402
@@ -54,17 +52,20 @@ import torch  # noqa: E402
 import typer  # noqa: E402
 from torch import nn  # noqa: E402
 
+import harness  # first: it sets the OpenMP wait policy before torch loads
 from orbify import convert, parse_group
 from orbify.calibration.calibrate import calibrate_conversion
-from orbify.experiments.digits import (SIX_NINE_POLICY,
+from orbify.common.safe_io import atomic_write
+from orbify.experiments.digits import (
+    SIX_NINE_POLICY,
     DigitSplits,
     accuracy_every_element,
     load_digit_splits,
-    train_digits_cnn)
-from orbify.common.safe_io import atomic_write
+    train_digits_cnn,
+)
 from orbify.symmetry.groups import Group
-from orbify.tuning.teacher import GroupAveraged
 from orbify.tuning.loop import tune
+from orbify.tuning.teacher import GroupAveraged
 
 CALIBRATION_IMAGES = 512
 FIRST_VERSION = dict(selection="importance", transformed_copies=False, refit_norms=False)

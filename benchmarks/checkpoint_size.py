@@ -11,8 +11,6 @@ Run: ``python benchmarks/checkpoint_size.py`` (full, a few minutes) or ``--quick
 
 from __future__ import annotations
 
-import harness  # first: it sets the OpenMP wait policy before torch loads
-
 import tempfile  # noqa: E402
 from pathlib import Path  # noqa: E402
 
@@ -20,6 +18,7 @@ import torch  # noqa: E402
 import torchvision  # noqa: E402
 import typer  # noqa: E402
 
+import harness  # first: it sets the OpenMP wait policy before torch loads
 from orbify import bake_model, convert, save
 from orbify.verification.measure import count_params, state_dict_bytes
 

@@ -14,8 +14,6 @@ Run: ``python benchmarks/conversion.py`` (full, a few minutes) or ``--quick`` (s
 
 from __future__ import annotations
 
-import harness  # first: it sets the OpenMP wait policy before torch loads
-
 import json  # noqa: E402
 import resource  # noqa: E402
 import subprocess  # noqa: E402
@@ -23,8 +21,10 @@ import sys  # noqa: E402
 import time  # noqa: E402
 
 import torch  # noqa: E402
-import typer  # noqa: E402
 import torchvision  # noqa: E402
+import typer  # noqa: E402
+
+import harness  # first: it sets the OpenMP wait policy before torch loads
 
 SECONDS_MAX = 10.0
 PEAK_MB_MAX = 2048.0

@@ -14,9 +14,9 @@ accuracy over the elements is reported for:
 * the original with test-time averaging (TTA) over the group, each way of combining the |G| views
   (:class:`orbify.tuning.teacher.GroupAveraged`; |G| forward passes per image);
 * the converted model (``channels`` budget, same width and about the same MACs) before tuning;
-* the converted model tuned by distillation (:func:`orbify.tuning.loop`) from the most confident view
+* the converted model tuned by distillation (:func:`orbify.tune`) from the most confident view
   of the original, on the training split's images without labels, then with labels as well;
-  and, for comparison, from the probability average (design.md section 9: with an upright-only
+  and, for comparison, from the probability average (docs/design.md §13: with an upright-only
   original the most confident view is the far better teacher).
 
 Inference cost per image: multiply-accumulates counted by ``torch.utils.flop_counter`` and
@@ -30,8 +30,6 @@ Everything is seeded; accuracies repeat exactly with the same torch version and 
 
 from __future__ import annotations
 
-import harness  # first: it sets the OpenMP wait policy before torch loads
-
 import json  # noqa: E402
 from dataclasses import asdict, dataclass  # noqa: E402
 from pathlib import Path  # noqa: E402
@@ -41,18 +39,20 @@ import torch  # noqa: E402
 import typer  # noqa: E402
 from torch import nn  # noqa: E402
 
+import harness  # first: it sets the OpenMP wait policy before torch loads
 from orbify import bake_model, convert, parse_group
-from orbify.experiments.digits import (SIX_NINE_POLICY,
+from orbify.common.safe_io import atomic_write
+from orbify.experiments.digits import (
+    SIX_NINE_POLICY,
     DigitSplits,
     accuracy,
-    accuracy_every_element,
     load_digit_splits,
-    train_digits_cnn)
-from orbify.common.safe_io import atomic_write
+    train_digits_cnn,
+)
 from orbify.symmetry.groups import Group
-from orbify.verification.measure import count_macs
-from orbify.tuning.teacher import VIEW_COMBINATIONS, GroupAveraged
 from orbify.tuning.loop import tune
+from orbify.tuning.teacher import VIEW_COMBINATIONS, GroupAveraged
+from orbify.verification.measure import count_macs
 
 SEED = 0
 WIDTH = 32

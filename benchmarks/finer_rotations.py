@@ -56,20 +56,20 @@ import copy
 import math
 import statistics
 
-import harness  # noqa: F401  (sets OMP_WAIT_POLICY before torch loads)
 import numpy as np
 import torch
 import torchvision
-from harness import console, fix_threads, markdown_table, print_header, progress
 from scipy import ndimage
 from torch import nn
 
-from orbify.verification.approximate import SmoothPattern, disk_window
-from orbify.layers.bake import bake_model
+import harness  # noqa: F401  (sets OMP_WAIT_POLICY before torch loads)
+from harness import console, fix_threads, markdown_table, print_header, progress
 from orbify.conversion.converter import convert
 from orbify.example import CLASS_NAMES, load_example_model, make_tiles
+from orbify.layers.bake import bake_model
 from orbify.symmetry.groups import Group, parse_group
 from orbify.transfer.recalibrate import recalibrate_batch_norm
+from orbify.verification.approximate import SmoothPattern, disk_window
 
 ANGLES = 8   # c8: views at every multiple of 45°
 MODEL_KEYS = ("random", "trained", "example")

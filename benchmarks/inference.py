@@ -22,8 +22,6 @@ Run: ``python benchmarks/inference.py`` (full, a quarter of an hour on 2 idle co
 
 from __future__ import annotations
 
-import harness  # first: it sets the OpenMP wait policy before torch loads
-
 from collections.abc import Callable  # noqa: E402
 
 import torch  # noqa: E402
@@ -31,9 +29,10 @@ import typer  # noqa: E402
 from torch import nn  # noqa: E402
 from torch.nn.utils import parametrize  # noqa: E402
 
+import harness  # first: it sets the OpenMP wait policy before torch loads
 from orbify import bake_model, convert, parse_group
-from orbify.symmetry.groups import Group
 from orbify.graph.sizes import SizeChecker
+from orbify.symmetry.groups import Group
 from orbify.tuning.teacher import GroupAveraged, combine_views
 
 CONVERTED_MAX = 1.05        # converted / original

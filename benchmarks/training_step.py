@@ -21,8 +21,6 @@ Run: ``python benchmarks/training_step.py`` (full, several minutes) or ``--quick
 
 from __future__ import annotations
 
-import harness  # first: it sets the OpenMP wait policy before torch loads
-
 from collections.abc import Callable  # noqa: E402
 
 import torch  # noqa: E402
@@ -30,6 +28,7 @@ import typer  # noqa: E402
 from torch import nn  # noqa: E402
 from torch.profiler import ProfilerActivity, profile  # noqa: E402
 
+import harness  # first: it sets the OpenMP wait policy before torch loads
 from orbify import bake_model, convert
 
 TIED_MAX = 1.2   # converted (tied) step / original step

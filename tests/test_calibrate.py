@@ -226,5 +226,5 @@ def test_torchvision_backbones_calibrate_on_256_images_and_stay_invariant(name):
     report = calibrate_conversion(converted, plan, original, images, progress=False)
     assert not report.fallbacks
     assert report.agreement is not None
-    # float64: random-weight backbones amplify float32 rounding to ~1e-5 (see the numerical note in DEVELOPERS.md)
+    # float64: random-weight backbones amplify float32 rounding to ~1e-5 (see docs/design.md §12)
     assert max_invariance_error(converted, group, images[:2]) <= 1e-5

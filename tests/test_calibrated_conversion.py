@@ -58,11 +58,11 @@ def test_calibrated_conversion_agrees_with_the_averaged_original_better_than_orb
     assert quarter_turn_invariance(calibrated, fresh) <= TOLERANCE
     assert plan.init == "calibrated"
     report = plan.calibration
-    assert report["images"] == 96 and report["views"] == 4
-    assert 0.0 <= report["agreement"] <= 1.0
-    layers = {layer["target"]: layer for layer in report["layers"]}
+    assert report.images == 96 and report.views == 4
+    assert 0.0 <= report.agreement <= 1.0
+    layers = {layer.target: layer for layer in report.layers}
     assert set(layers) == {"features.0.0", "features.1.0", "features.2.0", "features.3.0", "classifier"}
-    assert all(0.0 <= layer["error"] <= 1.0 for layer in layers.values())
+    assert all(0.0 <= layer.error <= 1.0 for layer in layers.values())
     assert any(note.startswith("calibrated on 96 images") for note in plan.notes)
     assert plan.layer("classifier").notes[-1].startswith("calibrated: least squares, unexplained variance")
 
@@ -105,7 +105,7 @@ def test_cli_calibration_implies_the_calibrated_init_and_reports_it(tmp_path, ti
     flat = " ".join(output.split())
     assert "48 images × 4 views" in flat and "agreement" in flat and "worst refit" in flat
     loaded = load(out)
-    assert loaded.plan.init == "calibrated" and loaded.plan.calibration["images"] == 48
+    assert loaded.plan.init == "calibrated" and loaded.plan.calibration.images == 48
     checked_out = tmp_path / "check.md"
     code, output, _ = invoke("check", out, "--original", "example", "--markdown", checked_out)
     assert code == 0, output
@@ -142,7 +142,7 @@ def test_a_recipe_can_choose_the_calibrated_init_and_its_image_count(tmp_path, t
     assert code != 0 and "needs unlabeled images" in " ".join(output.split())
     code, output, _ = invoke("convert", "example", "--recipe", recipe, "--calibration", tile_file, "-o", out)
     assert code == 0, output
-    assert load(out).plan.calibration["images"] == 40
+    assert load(out).plan.calibration.images == 40
 
 
 def test_tune_can_start_from_a_calibrated_conversion(tmp_path):
@@ -154,4 +154,4 @@ def test_tune_can_start_from_a_calibrated_conversion(tmp_path):
                              "--epochs", 1, "--batch-size", 32, "-o", out)
     assert code == 0, output
     plan = load(out).plan
-    assert plan.init == "calibrated" and plan.calibration["images"] == 96
+    assert plan.init == "calibrated" and plan.calibration.images == 96

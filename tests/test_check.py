@@ -11,17 +11,16 @@ from torch import nn
 from torch.nn.utils import parametrize
 from typer.testing import CliRunner
 
-from orbify.verification.check import check_model, parse_layout
 from orbify.cli import app, main
 from orbify.conversion.converter import convert
 from orbify.data import ImageSet
 from orbify.errors import GroupError
 from orbify.example import load_example_model, make_tiles
-from orbify.symmetry.layouts import Flat, Orbit, Plain
-from orbify.verification.measure import count_macs, count_params
-from orbify.transfer.recalibrate import recalibrate_batch_norm
-from orbify.verification.report import check_markdown, plot_check, write_json
 from orbify.files.saving import save
+from orbify.transfer.recalibrate import recalibrate_batch_norm
+from orbify.verification.check import check_model
+from orbify.verification.measure import count_macs, count_params
+from orbify.verification.report import check_markdown, plot_check, write_json
 
 TOL = 1e-5
 runner = CliRunner()
@@ -136,11 +135,6 @@ def test_map_head_is_checked_for_equivariance_of_the_output():
     assert report.output_property == "equivariance"
     assert report.invariance_error <= TOL
     assert report.top1_agreement is not None   # per-pixel class agreement
-
-
-def test_parse_layout_reads_what_str_writes():
-    for layout in (Plain(3), Orbit(16), Flat(Orbit(4), 7, 7)):
-        assert parse_layout(str(layout)) == layout
 
 
 def test_json_report_has_the_required_keys(tmp_path):

@@ -13,9 +13,11 @@ from typer.testing import CliRunner
 
 import orbify
 from orbify.cli import app
-from orbify.cli.convert import choose_input_size
-from orbify.example import load_example_model, make_tiles
 from orbify.common.safe_io import sha256_file
+from orbify.example import load_example_model, make_tiles
+from orbify.files.sources import usual_input_size
+from orbify.graph.sizes import choose_input_size
+from orbify.symmetry.layouts import Orbit, Plain
 
 runner = CliRunner()
 
@@ -113,9 +115,9 @@ def test_convert_stops_at_a_node_and_pools_its_orbits_there(tmp_path):
     loaded = orbify.load(out)
     assert loaded.plan.stop_at == "features.2"
     layouts = {layer.target: (layer.layout_in, layer.layout_out) for layer in loaded.plan.layers}
-    assert layouts["features.2.0"] == ("orbit(8)", "orbit(16)")      # c4: 32 and 64 channels in orbits of 4
+    assert layouts["features.2.0"] == (Orbit(8), Orbit(16))      # c4: 32 and 64 channels in orbits of 4
     for target in ("features.3.0", "features.3.1", "classifier"):    # after the stop: plain channels
-        assert all(layout.startswith("plain(") for layout in layouts[target]), (target, layouts[target])
+        assert all(isinstance(layout, Plain) for layout in layouts[target]), (target, layouts[target])
 
 
 # -- input sizes -------------------------------------------------------------------------------------------------
@@ -141,7 +143,7 @@ def strided_grids_symmetric(model: nn.Module, size: int) -> bool:
 
 def test_size_choice_for_a_torchvision_backbone_is_the_nearest_safe_size_to_224():
     model = torchvision.models.resnet18(weights=None).eval()
-    choice = choose_input_size(model, "torchvision:resnet18")
+    choice = choose_input_size(model, usual_input_size("torchvision:resnet18"))
     assert not strided_grids_symmetric(model, 224)
     assert strided_grids_symmetric(model, choice.size)
     assert all(not strided_grids_symmetric(model, s) for s in range(224 - abs(choice.size - 224) + 1, choice.size))
@@ -153,7 +155,7 @@ def test_size_choice_for_a_model_of_unknown_origin_starts_from_224():
     # The example CNN named by its factory: its first stride-2 3x3 conv (padding 1) sees 224 + 2 - 3 = 223, odd;
     # at 225 the three stride-2 convs see 225, 113 and 57, and 224, 112 and 56 are even.
     model = load_example_model()
-    choice = choose_input_size(model, "orbify.example.model:build_example_cnn")
+    choice = choose_input_size(model, usual_input_size("orbify.example.model:build_example_cnn"))
     assert choice.size == 225 and strided_grids_symmetric(model, 225) and not strided_grids_symmetric(model, 224)
     assert "the safe size nearest 224" in choice.reason and "unknown origin" in choice.reason
 

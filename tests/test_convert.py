@@ -7,10 +7,12 @@ from torch import nn
 
 import robust_models
 from orbify.conversion.converter import convert
-from orbify.errors import OptionError, TraceError, UnsupportedOpError, WidthError
-from orbify.symmetry.groups import parse_group
-from orbify.transfer.recalibrate import recalibrate_batch_norm
+from orbify.errors import TraceError, UnsupportedOpError
+from orbify.graph.plan import Rounding
 from orbify.graph.sizes import safe_sizes
+from orbify.symmetry.groups import parse_group
+from orbify.symmetry.layouts import Orbit, Plain
+from orbify.transfer.recalibrate import recalibrate_batch_norm
 
 TOL = 1e-5
 
@@ -90,7 +92,7 @@ def test_safe_sizes_table_used_here_is_safe():
 
 @pytest.mark.parametrize("budget,ratio", [("channels", 1 / 4), ("params", 1.0), ("fields", 4.0)])
 def test_budget_parameter_counts(budget, ratio):
-    # design.md section 7 under c4 (|G| = 4) for an orbit→orbit 3×3 conv of C channels:
+    # docs/design.md §7 under c4 (|G| = 4) for an orbit→orbit 3×3 conv of C channels:
     # channels: C·C·9/4 (÷|G|); params: (C/2 orbits)·(2C channels)·9 = C·C·9 (≈ same); fields: C·4C·9 (×|G|).
     C = 16
     model = nn.Sequential(nn.Conv2d(C, C, 3, padding=1, bias=False))
@@ -100,7 +102,7 @@ def test_budget_parameter_counts(budget, ratio):
     layer = plan.layer("1.0")
     conv = converted.get_submodule("1.0")
     assert sum(p.numel() for p in conv.parameters()) == int(C * C * 9 * ratio)
-    assert layer.layout_in.startswith("orbit") and layer.layout_out.startswith("orbit")
+    assert isinstance(layer.layout_in, Orbit) and isinstance(layer.layout_out, Orbit)
 
 
 class SegmentationNet(nn.Module):
@@ -143,7 +145,7 @@ def test_segmentation_map_head_is_equivariant(group_name):
         for a in range(group.order):
             moved = converted(group.act_grid(a, x))
             assert float((moved - group.act_grid(a, y)).norm() / y.norm()) <= TOL
-    assert plan.layer("head").layout_out.startswith("plain")
+    assert isinstance(plan.layer("head").layout_out, Plain)
 
 
 def test_unsupported_op_names_the_node():
@@ -177,7 +179,9 @@ def test_width_rounding_recorded():
     converted, plan = convert(net, "c4", example_input=torch.randn(1, 3, 9, 9))
     # 10 / |G| = 2.5 orbits rounds half up to 3 orbits = 12 channels
     assert plan.layer("0").channels_after == (3, 12)
-    assert any("rounded 10 channels to 3 whole orbits" in r for r in plan.roundings)
+    assert plan.layer("0").rounding == Rounding(channels=10, orbits=3, rounded=12)
+    assert plan.roundings == ["rounded 10 channels to 3 whole orbits (12 channels)"]
+    assert plan.roundings[0] in plan.layer("0").notes
 
 
 def test_partial_conversion_stops_and_pools():
@@ -186,7 +190,7 @@ def test_partial_conversion_stops_and_pools():
     x = torch.randn(2, 3, 33, 33)
     converted, plan = convert(model, "c4", example_input=x, stop_at="layer3")
     calibrated(converted, 33)
-    assert plan.layer("layer4.0.conv1").layout_in.startswith("plain")
+    assert isinstance(plan.layer("layer4.0.conv1").layout_in, Plain)
     assert invariance_error(converted, parse_group("c4"), x) <= TOL
 
 

@@ -14,8 +14,8 @@ import torch
 from typer.testing import CliRunner
 
 from orbify.cli import app
-from orbify.example.demo import FILES, PLOTS
 from orbify.example import make_tiles
+from orbify.example.demo import FILES, PLOTS
 
 TOLERANCE = 1e-5
 

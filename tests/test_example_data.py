@@ -146,7 +146,7 @@ def test_widths_split_into_whole_d4_orbits_and_strides_are_symmetric_at_33_pixel
     size = DEFAULT_SIZE
     for conv in (m for m in model.modules() if isinstance(m, torch.nn.Conv2d)):
         assert conv.out_channels % 8 == 0
-        # Sampling-grid symmetry rule of design.md section 6: (H + 2p - k) divisible by stride.
+        # Sampling-grid symmetry rule of docs/design.md §6: (H + 2p - k) divisible by stride.
         span = size + 2 * conv.padding[0] - conv.kernel_size[0]
         assert span % conv.stride[0] == 0
         size = span // conv.stride[0] + 1

@@ -18,13 +18,13 @@ from torch.nn.utils import parametrize
 from helpers import relative_error
 from orbify import bake_model, convert, export_model
 from orbify.cli import main
+from orbify.common.safe_io import sha256_file
 from orbify.errors import OptionError, OutputError, UnsupportedOpError
 from orbify.example import load_example_model
 from orbify.files.export import FORMATS, run_exported
-from orbify.common.safe_io import sha256_file
-from orbify.symmetry.groups import parse_group
-from orbify.layers.tied import OrbitBatchNorm, OrbitPool
 from orbify.files.saving import save
+from orbify.layers.tied import OrbitBatchNorm, OrbitPool
+from orbify.symmetry.groups import parse_group
 
 SIZE = 33   # safe for the example CNN: 33 -> 17 -> 9 -> 5 (see orbify.example.model)
 TOL = 1e-5
@@ -93,8 +93,8 @@ def test_baked_weights_are_the_expanded_tied_weights(tied):
 
 
 def test_single_tied_module_bakes_to_its_plain_class():
-    from orbify.symmetry.layouts import Orbit, Plain
     from orbify.layers.tied import tie_conv
+    from orbify.symmetry.layouts import Orbit, Plain
 
     conv = tie_conv(nn.Conv2d(3, 16, 3, padding=1), D4, Plain(3), Orbit(2))
     baked = bake_model(conv)

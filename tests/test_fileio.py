@@ -12,8 +12,8 @@ import pytest
 import torch
 from torch import nn
 
-from orbify.errors import CheckpointError, OutputError
 from orbify.common.safe_io import atomic_write, load_torch_weights, save_torch, sha256_file
+from orbify.errors import CheckpointError, OutputError
 
 
 class WriterFailed(Exception):

@@ -8,8 +8,8 @@ from torch import nn
 from torch.nn.utils import parametrize
 
 from orbify.common.safe_io import save_torch
-from orbify.verification.measure import count_macs, count_params, state_dict_bytes
 from orbify.files.sources import load_source
+from orbify.verification.measure import count_macs, count_params, state_dict_bytes
 
 # Source: torchvision model documentation, weight enum metadata num_params / GFLOPS; from memory,
 # reproduced with torchvision 0.29 — see check-values.md. torchvision's "GFLOPS" column counts

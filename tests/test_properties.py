@@ -1,6 +1,6 @@
 """Property tests: random plain CNNs either convert and are invariant, or are refused naming a node.
 
-Models are drawn from the building blocks of design.md section 5: convs with random kernel, stride,
+Models are drawn from the building blocks of docs/design.md §5: convs with random kernel, stride,
 padding, groups and dilation; batch norm; activations; max/avg pools; residual adds; channel
 concatenations; squeeze-excitation gates; global pool or flatten + linear heads. Groups and budgets
 are drawn too. The CI profile ("ci", the default) runs 200 examples; set
@@ -9,7 +9,6 @@ are drawn too. The CI profile ("ci", the default) runs 200 examples; set
 
 import os
 
-import pytest
 import torch
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
@@ -17,9 +16,9 @@ from torch import nn
 
 from orbify.conversion.converter import convert
 from orbify.errors import OrbifyError, UnsupportedOpError, WidthError
+from orbify.graph.sizes import SizeChecker
 from orbify.symmetry.groups import parse_group
 from orbify.transfer.recalibrate import recalibrate_batch_norm
-from orbify.graph.sizes import SizeChecker
 
 settings.register_profile("quick", max_examples=30, deadline=None, suppress_health_check=[HealthCheck.too_slow])
 settings.register_profile("ci", max_examples=200, deadline=None, suppress_health_check=[HealthCheck.too_slow],

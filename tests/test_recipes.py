@@ -24,10 +24,11 @@ from typer.testing import CliRunner
 from orbify.cli import app, main
 from orbify.conversion.converter import convert
 from orbify.errors import OptionError, RecipeError
-from orbify.symmetry.groups import parse_group
-from orbify.transfer.recalibrate import recalibrate_batch_norm
-from orbify.recipes import find_recipe_for, list_recipes, load_recipe, merge_options, read_recipe, shipped_folder
 from orbify.files.sources import load_source
+from orbify.recipes import find_recipe_for, list_recipes, load_recipe, merge_options, read_recipe, shipped_folder
+from orbify.symmetry.groups import parse_group
+from orbify.symmetry.layouts import Plain
+from orbify.transfer.recalibrate import recalibrate_batch_norm
 
 TOL = 1e-5
 
@@ -160,7 +161,7 @@ def test_recipe_options_reach_convert_including_stop_at(tmp_path):
     x = torch.randn(2, 3, 33, 33)
     converted, plan = convert(model, example_input=x, **options)
     assert plan.stop_at == "layer3" and plan.group == "c4" and plan.budget == "params"
-    assert plan.layer("layer4.0.conv1").layout_in.startswith("plain")
+    assert isinstance(plan.layer("layer4.0.conv1").layout_in, Plain)
     assert invariance_error(calibrated(converted, 33), parse_group("c4"), x) <= TOL
 
 
@@ -239,7 +240,7 @@ def test_unknown_architecture_suggests_close_names(tmp_path):
 def test_unsafe_input_size_names_file_key_and_safe_sizes(tmp_path):
     # resnet18: five stride-2 ops (3×3 / 7×7 convs with padding, a 3×3 max pool) each need
     # (H + 2·padding − kernel) even; 224 breaks at the first conv (224 + 6 − 7 = 223 is odd), and
-    # 225 = 7·32 + 1 is the nearest safe size (design.md section 6 measures 224 against 225).
+    # 225 = 7·32 + 1 is the nearest safe size (docs/design.md §6 works 224 against 225).
     path = write(tmp_path, RESNET18.replace("input_size = 225", "input_size = 224"))
     message = refusal(path, apply_to="torchvision:resnet18")
     assert str(path) in message and "key convert.input_size" in message

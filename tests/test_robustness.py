@@ -1,7 +1,6 @@
 """Bad models, bad options and bad files: every failure is one clear paragraph, exits non-zero without a
 traceback, writes nothing and never modifies an input (inputs are hashed before and after)."""
 
-from pathlib import Path
 
 import pytest
 import torch
@@ -154,7 +153,7 @@ def test_output_directory_missing(tmp_path, small_weights):
 
 
 def test_interrupted_save_keeps_previous_file(tmp_path, small_weights, monkeypatch):
-    from orbify import fileio
+    from orbify.common import safe_io as fileio
 
     out_path = tmp_path / "x.orb"
     code, out = run("convert", "robust_models:small", "--weights", small_weights, "--input-size", "9", "-g", "c4",

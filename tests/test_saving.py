@@ -8,13 +8,16 @@ import torchvision
 from torch import nn
 
 from orbify import convert, load, save
+from orbify.calibration.report import CalibrationReport, LayerCalibration
 from orbify.cli import main
+from orbify.common.safe_io import sha256_file
 from orbify.errors import CheckpointError, OptionError, OutputError, SourceError
 from orbify.example import load_example_model
-from orbify.common.safe_io import sha256_file
-from orbify.transfer.recalibrate import recalibrate_batch_norm
 from orbify.files.saving import DESCRIPTION_KEY, FORMAT_NAME, STATE_KEY, is_converted_file
 from orbify.files.sources import load_source
+from orbify.graph.plan import ConversionPlan, LayerPlan, Rounding
+from orbify.symmetry.layouts import Flat, Orbit, Plain
+from orbify.transfer.recalibrate import recalibrate_batch_norm
 
 EXAMPLE = "orbify.example:load_example_model"
 SIZE = 33   # safe for the example CNN, resnet18 and mobilenet_v2 (see tests/test_convert.py SMALL_SAFE)
@@ -73,6 +76,27 @@ def test_example_round_trip_is_bitwise(example_file, images):
     assert metadata["conversion"]["leaf_types"] == ["torch.nn.modules.activation:ReLU"]
     assert metadata["conversion"]["input_shape"] == [2, 3, SIZE, SIZE]
     assert not loaded.module.training
+    assert loaded.plan == plan
+
+
+def test_plan_json_writes_layouts_as_text_and_reads_them_back():
+    rounded = LayerPlan("conv", "conv", "Conv2d", Plain(3), Orbit(3), (3, 10), (3, 12), (3, 3), (1, 1),
+                        notes=["rounded 10 channels to 3 whole orbits (12 channels)"], weight_residual=0.5,
+                        rounding=Rounding(10, 3, 12))
+    flat = LayerPlan("fc", "fc", "Linear", Flat(Orbit(3), 2, 2), Plain(5), (40, 5), (48, 5))
+    report = CalibrationReport(8, 1, "variance", 1e-3, True, False,
+                               [LayerCalibration("fc", "fc", "least squares", 5, 48, 1, [0, 1, 2, 3, 4], 0.25)])
+    plan = ConversionPlan("c4", "channels", "invariant", "calibrated", (1, 3, 4, 4), layers=[rounded, flat],
+                          values={"x": Plain(3), "conv": Orbit(3), "flatten": Flat(Orbit(3), 2, 2), "size": None},
+                          calibration=report)
+    data = json.loads(json.dumps(plan.to_dict()))
+    assert [(layer["layout_in"], layer["layout_out"]) for layer in data["layers"]] == \
+        [("plain(3)", "orbit(3)"), ("flat(orbit(3)×2×2)", "plain(5)")]
+    assert "rounding" not in data["layers"][0]
+    assert data["values"] == {"x": "plain(3)", "conv": "orbit(3)", "flatten": "flat(orbit(3)×2×2)", "size": "-"}
+    assert data["calibration"] == report.to_dict()
+    read = ConversionPlan.from_dict(data, CalibrationReport.from_dict)
+    assert read == plan and read.roundings == ["rounded 10 channels to 3 whole orbits (12 channels)"]
 
 
 def test_float64_model_round_trips_in_float64(example_file, tmp_path, images):

@@ -12,8 +12,8 @@ import torch
 import torchvision
 from torch import nn
 
-from orbify.errors import CheckpointError, SourceError, TrustError
 from orbify.common.safe_io import sha256_file
+from orbify.errors import CheckpointError, SourceError, TrustError
 from orbify.files.sources import LoadedSource, load_source, rebuild, register_file_loader
 
 _module_numbers = itertools.count()

@@ -61,7 +61,8 @@ def test_converted_summary_carries_the_plan_layouts_and_stored_params():
     summary = summarize(converted, x, plan, title="c4")
     rows = {row.name: row for row in summary.rows}
     for layer in plan.layers:
-        assert (rows[layer.name].layout_in, rows[layer.name].layout_out) == (layer.layout_in, layer.layout_out)
+        assert (rows[layer.name].layout_in, rows[layer.name].layout_out) == \
+            (str(layer.layout_in), str(layer.layout_out))
     assert rows["_0"].op == "Conv2d" and rows["_0"].params == 4 * 3 * 3 * 3 + 4   # 4 base filters + 4 biases
     assert rows["_1"].op == "OrbitBatchNorm"
     assert summary.params == count_params(converted) and summary.macs == count_macs(converted, x)
@@ -70,7 +71,7 @@ def test_converted_summary_carries_the_plan_layouts_and_stored_params():
 
 def test_diff_of_resnet18_before_and_after_c4_channels():
     # Architecture: torchvision's resnet18. Under the 'channels' budget every width stays, so MACs are the same
-    # and the stored parameters shrink by |G| = 4 (design.md section 7), up to the plain 1000-way head.
+    # and the stored parameters shrink by |G| = 4 (docs/design.md §7), up to the plain 1000-way head.
     # Neither ratio depends on the input size; 64 pixels keep the test quick.
     torch.manual_seed(0)
     model = torchvision.models.resnet18().eval()

@@ -8,9 +8,9 @@ from torch import nn
 from torch.nn.utils import parametrize
 
 from helpers import max_equivariance_error
+from orbify.layers.tied import OrbitBatchNorm, OrbitPool, bake, tie_affine, tie_conv, tie_linear
 from orbify.symmetry.groups import parse_group
 from orbify.symmetry.layouts import Flat, Orbit, Plain
-from orbify.layers.tied import OrbitBatchNorm, OrbitPool, bake, tie_affine, tie_conv, tie_linear
 from orbify.symmetry.tying import TiedWeight, fibre_index, project, weight_residual
 
 EXACT = ["c2", "c4", "d1", "d2", "d4"]
@@ -45,7 +45,6 @@ CONV_CASES = [
 @pytest.mark.parametrize("case", CONV_CASES, ids=lambda c: "-".join(map(str, c)))
 def test_conv_equivariant(name, case):
     group = parse_group(name)
-    n = group.order
     kin, kout, k, stride, padding, dilation, groups, size = case
     lin = Orbit(2 * (1 if groups == 1 else 2)) if kin == "orbit" else Plain(3)
     lout = Orbit(2 * (1 if groups == 1 else 2)) if kout == "orbit" else Plain(4)
@@ -153,7 +152,7 @@ def _orbits_of_kernel(group, k):
 
 @pytest.mark.parametrize("name", EXACT)
 def test_parameter_counts_match_budget_formula(name):
-    # design.md section 7: an orbit-out layer stores f_out · (fibre size) numbers; an orbit→orbit conv
+    # docs/design.md §7: an orbit-out layer stores f_out · (fibre size) numbers; an orbit→orbit conv
     # with C = f·|G| channels on both sides stores C_out·C_in·k² / |G| (the `channels` budget's ÷|G|).
     group = parse_group(name)
     n = group.order

@@ -1,4 +1,7 @@
-"""Carrying pretrained weights over: orbit averaging, channel matching, lossless embedding (design.md 4, 7)."""
+"""Carrying pretrained weights over: orbit averaging, channel matching, lossless embedding.
+
+The rules are in docs/design.md §4, §7 and §8.
+"""
 
 import copy
 
@@ -9,18 +12,19 @@ import torchvision
 from torch import nn
 from torch.nn.utils import parametrize
 
-from orbify.layers.bake import bake_model
-from orbify.transfer.channels import ChannelMap, feed
 from orbify.conversion.converter import convert
 from orbify.errors import OptionError
 from orbify.experiments.digits import build_digits_cnn, load_digit_splits, train_digits_cnn
 from orbify.graph.tracing import trace
+from orbify.layers.bake import bake_model
+from orbify.layers.tied import OrbitBatchNorm
 from orbify.symmetry.groups import parse_group
 from orbify.symmetry.layouts import Orbit, Plain
-from orbify.layers.tied import OrbitBatchNorm
-from orbify.transfer.recalibrate import recalibrate_batch_norm
-from orbify.transfer.matching import ChannelClasses, MatchTerm, match_channels, residual_totals, tied_residual
 from orbify.symmetry.tying import TiedWeight
+from orbify.transfer.channels import ChannelMap, feed
+from orbify.transfer.loading import tied_residual
+from orbify.transfer.matching import ChannelClasses, MatchTerm, match_channels, residual_totals
+from orbify.transfer.recalibrate import recalibrate_batch_norm
 
 
 def calibrated(model: nn.Module, size: int, seed: int = 0) -> nn.Module:

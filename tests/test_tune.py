@@ -11,8 +11,9 @@ from torch import nn
 
 from orbify import convert, parse_group
 from orbify.errors import CheckpointError, DataError, OptionError, OutputError
+from orbify.tuning.dataset import holdout_split
+from orbify.tuning.loop import tune
 from orbify.tuning.teacher import VIEW_COMBINATIONS, GroupAveraged, combine_views
-from orbify.tuning.loop import holdout_split, tune
 
 SIZE = 9
 
@@ -103,7 +104,7 @@ def test_tuning_lowers_the_loss_raises_rotated_accuracy_and_keeps_invariance(dig
     assert result.final.measure == "accuracy"
     assert result.final.loss < 0.8 * result.before.loss
     assert result.final.transformed > result.before.transformed + 0.1
-    # With an upright-only original the most confident view is the best teacher (design.md section 9).
+    # With an upright-only original the most confident view is the best teacher (docs/design.md §13).
     assert result.teacher_accuracy["most-confident"] > result.teacher_accuracy["probability"]
     # Held-out accuracy on rotated copies, measured independently of the tuner on the test split.
     from orbify.experiments.digits import accuracy_every_element

@@ -68,6 +68,18 @@ def read_images(path: str | Path, *, size: int | None = None, channels: int = 3,
     Raises:
         DataError: the path is missing or holds no images, a file cannot be decoded, shapes
             disagree, or an array file lacks ``images`` or has a wrong shape.
+
+    Example (an ``.npz`` file of five 12×12 RGB images, channels last, with labels):
+
+    >>> import pathlib, tempfile
+    >>> import numpy as np
+    >>> import orbify
+    >>> with tempfile.TemporaryDirectory() as folder:
+    ...     file = pathlib.Path(folder) / "tiles.npz"
+    ...     np.savez(file, images=np.zeros((5, 12, 12, 3), dtype=np.uint8), labels=np.array([0, 1, 0, 1, 2]))
+    ...     data = orbify.read_images(file, size=8, mean=[0.5, 0.5, 0.5], std=[0.5, 0.5, 0.5])
+    >>> tuple(data.images.shape), data.labels.tolist(), float(data.images.min())
+    ((5, 3, 8, 8), [0, 1, 0, 1, 2], -1.0)
     """
     source = Path(path)
     if channels not in (1, 3):

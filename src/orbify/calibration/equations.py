@@ -1,9 +1,9 @@
-"""The least-squares refit of one tied conv or linear layer, accumulated batch by batch.
+"""The least-squares refit of one tied conv or linear layer, accumulated batch by batch (docs/design.md §9.2).
 
 A tied layer's full weight is a linear function of its base (:mod:`orbify.symmetry.tying`). Calibration
 fits base rows so that chosen output rows reproduce targets taken from the original:
 
-* **orbit outputs**: the base row of orbit o *is* the slot-0 filter (design.md section 4), and
+* **orbit outputs**: the base row of orbit o *is* the slot-0 filter (docs/design.md §4), and
   slot s holds the same filter moved by s, ``W[o, s] = base[o][index_s]``. Row (o, s) on the
   input x computes what slot 0 computes on the input moved by s⁻¹, so fitting slot 0 on the
   images *and their transformed copies* is fitting every slot s on the images as given, with
@@ -18,26 +18,24 @@ fits base rows so that chosen output rows reproduce targets taken from the origi
 Per batch only Gram matrices (features × features per conv group), feature sums and
 feature-target products are kept; the unfolded input of one batch is the largest temporary.
 The solve is ridge least squares in float64, with an intercept when the layer has a bias or
-feeds a batch norm that can absorb it.
+feeds a batch norm that can absorb it. Moving the products into base coordinates (the
+permutations and J above) is :mod:`orbify.calibration.coordinates`.
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import torch
 import torch.nn.functional as F
 from torch import nn
-from torch.nn.utils import parametrize
 
+from orbify.calibration.coordinates import BaseCoordinates, NotRefittable
 from orbify.symmetry.groups import Group
 
 #: Largest number of features per output row that is refitted (its Gram matrix: 8192² float64 = 0.5 GB).
 MAX_FEATURES = 8192
-
-
-class NotRefittable(Exception):
-    """Raised by :class:`LayerEquations` for a layer it cannot refit; the message says why."""
 
 
 @dataclass
@@ -68,6 +66,10 @@ class LayerEquations:
         slots: the slots fitted on the images as given (their copies' targets come from the
             original on s⁻¹·x); ``[0]`` fits the images only.
         intercept: fit a constant per row as well.
+
+    Raises:
+        NotRefittable: a transposed conv, more than :data:`MAX_FEATURES` features per row, or a
+            tying that cannot be refitted (:class:`~orbify.calibration.coordinates.BaseCoordinates`).
     """
 
     def __init__(self, module: nn.Module, group: Group, targets: torch.Tensor, slots: list[int], intercept: bool):
@@ -82,14 +84,12 @@ class LayerEquations:
         out_channels = module.out_channels if self.is_conv else module.out_features
         in_channels = module.in_channels if self.is_conv else module.in_features
         kernel = tuple(module.kernel_size) if self.is_conv else ()
-        self.features = in_channels // self.groups * _prod(kernel)
+        self.features = in_channels // self.groups * math.prod(kernel)
         if self.features + 1 > MAX_FEATURES:
             raise NotRefittable(f"{self.features} features per output exceed the limit of {MAX_FEATURES}")
         self.out_per_group = out_channels // self.groups
-        self.tying = module.parametrizations.weight[0] if parametrize.is_parametrized(module, "weight") else None
-        self.orbit_out = self.tying is not None and self.tying.out_is_orbit
-        self.order = group.order
-        self.slots, self.actions = self._actions(slots)
+        self.coordinates = BaseCoordinates(module, self.features, group.order, slots)
+        self.slots = self.coordinates.slots
         rows = self.targets.numel()
         self.row_groups = torch.stack([self._row_group(torch.arange(rows), s) for s in self.slots])  # (slots, rows)
         self.gram: torch.Tensor | None = None
@@ -99,41 +99,9 @@ class LayerEquations:
         self.target_sums = torch.zeros(len(self.slots), rows, dtype=torch.float64)
         self.target_squares = torch.zeros(len(self.slots), rows, dtype=torch.float64)
 
-    # -- what the tying does to a row ----------------------------------------------------------
-    def _actions(self, slots: list[int]) -> tuple[list[int], list[torch.Tensor] | torch.Tensor | None]:
-        """Slots kept and, per slot, how features map to base coordinates.
-
-        Orbit outputs: a permutation per slot (slots whose filters are resampled rather than
-        permuted are dropped). Plain outputs: the matrix J (features × base) of ``row = J base``.
-        Untied layers: None (the base is the weight).
-        """
-        if self.tying is None:
-            return slots, None
-        base_shape = self.module.parametrizations.weight.original.shape
-        if self.tying.transposed:
-            raise NotRefittable("transposed weights are not refitted")
-        if self.orbit_out:
-            count = base_shape[0]
-            probe = torch.arange(self.features, dtype=torch.float64).expand(count, -1).reshape(base_shape)
-            moved = self.tying(probe).reshape(count, self.order, self.features)[0]
-            identity = torch.arange(self.features, dtype=torch.float64)
-            if not torch.equal(moved[0], identity):
-                raise NotRefittable("the base of this tying is not the slot-0 filter")
-            kept = [s for s in slots if torch.equal(moved[s].sort().values, identity)]
-            return kept, [moved[s].long().argsort() for s in kept]
-        count, width = base_shape[0], _prod(tuple(base_shape[1:]))
-        design = torch.zeros(self.features, width, dtype=torch.float64)
-        for start in range(0, width, count):
-            columns = torch.arange(start, min(start + count, width))
-            probe = torch.zeros(count, width, dtype=torch.float64)
-            probe[torch.arange(columns.numel()), columns] = 1.0
-            full = self.tying(probe.reshape(base_shape)).reshape(count, self.features)
-            design[:, columns] = full[:columns.numel()].T
-        return slots, design
-
     def _row_group(self, rows: torch.Tensor, slot: int) -> torch.Tensor:
         """The conv group whose inputs row ``rows`` reads in slot ``slot``."""
-        channel = rows * self.order + slot if self.orbit_out else rows
+        channel = rows * self.group.order + slot if self.coordinates.orbit_out else rows
         return channel // self.out_per_group
 
     # -- accumulation ---------------------------------------------------------------------------
@@ -192,8 +160,8 @@ class LayerEquations:
             raise NotRefittable("no calibration data reached this layer")
         rows, views = self.targets.numel(), len(self.slots)
         total = self.count * views
-        width = self._width()
-        cross = torch.stack([self._move(i, self.cross[i]) for i in range(views)]).sum(0)   # (rows, width)
+        width = self.coordinates.width
+        cross = torch.stack([self.coordinates.move(i, self.cross[i]) for i in range(views)]).sum(0)   # (rows, width)
         target_sum, target_square = self.target_sums.sum(0), self.target_squares.sum(0)
         weights = torch.zeros(rows, width, dtype=torch.float64)
         intercept = torch.zeros(rows, dtype=torch.float64)
@@ -202,7 +170,7 @@ class LayerEquations:
         unique, which = self.row_groups.T.unique(dim=0, return_inverse=True)
         for k, key in enumerate(unique):
             members = torch.nonzero(which == k).flatten()
-            gram, sums = self._system(key)
+            gram, sums = self.coordinates.system(self.gram, self.sums, key)
             rhs = cross[members]
             if self.intercept:   # augment with the constant feature
                 gram = torch.cat([torch.cat([gram, sums[:, None]], 1),
@@ -220,31 +188,6 @@ class LayerEquations:
         return Solution(weights, intercept if self.intercept else None, error, fitted_sum / total,
                         fitted_square / total, target_sum / total, target_square / total)
 
-    def _width(self) -> int:
-        return self.features if not isinstance(self.actions, torch.Tensor) else self.actions.shape[1]
-
-    def _move(self, view: int, cross: torch.Tensor) -> torch.Tensor:
-        """Feature-side products of one slot in base coordinates."""
-        if self.actions is None:
-            return cross
-        if isinstance(self.actions, torch.Tensor):
-            return cross @ self.actions
-        return cross[:, self.actions[view]]
-
-    def _system(self, key: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
-        """Gram matrix and feature sums, in base coordinates, of the rows reading conv groups ``key`` (one per slot)."""
-        gram, sums = 0, 0
-        for view, group in enumerate(key.tolist()):
-            g, s = self.gram[group], self.sums[group]
-            if isinstance(self.actions, torch.Tensor):
-                g = self.actions.T @ g.double() @ self.actions
-                s = s @ self.actions
-            elif self.actions is not None:
-                index = self.actions[view]
-                g, s = g.index_select(0, index).index_select(1, index), s[index]
-            gram, sums = gram + g, sums + s
-        return gram.double(), sums
-
 
 def _ridge_solve(gram: torch.Tensor, cross: torch.Tensor, ridge: float, penalised: int) -> torch.Tensor:
     """Solve (G + λ D) b = c, D the identity on the first ``penalised`` coordinates."""
@@ -258,9 +201,3 @@ def _ridge_solve(gram: torch.Tensor, cross: torch.Tensor, ridge: float, penalise
         return torch.cholesky_solve(cross, factor)
     return torch.linalg.lstsq(system, cross).solution
 
-
-def _prod(shape: tuple[int, ...]) -> int:
-    out = 1
-    for s in shape:
-        out *= s
-    return out

@@ -1,6 +1,6 @@
 """Running the converted model and the original side by side over calibration batches, node by node.
 
-Calibration refits layers one stage at a time: each stage needs, for every batch, the converted
+Calibration refits layers one stage at a time (docs/design.md §9.4): each stage needs, for every batch, the converted
 model's values at the inputs of its layers (computed with the layers refitted so far) and the
 original's outputs of the same layers, on the images and on their transformed copies.
 :class:`PairedRun` keeps for every (batch, model, view) the values still alive at the point the
@@ -22,8 +22,8 @@ import torch
 from torch import fx, nn
 
 from orbify.errors import InputShapeError
-from orbify.symmetry.groups import Group
 from orbify.layers.tied import OrbitPool
+from orbify.symmetry.groups import Group
 
 CONVERTED = "converted"
 ORIGINAL = "original"
@@ -46,6 +46,11 @@ def original_graph(converted: fx.GraphModule, original: nn.Module) -> fx.GraphMo
             node.replace_all_uses_with(node.args[0])
             graph.erase_node(node)
     return fx.GraphModule(original, graph, type(original).__name__)
+
+
+def moved_back(group: Group, output: torch.Tensor, slot: int) -> torch.Tensor:
+    """The original's output on the copy moved by slot⁻¹, its pixels moved back by the slot (non-maps as they are)."""
+    return group.act_grid(slot, output) if output.dim() == 4 and slot else output
 
 
 def is_mutated_in_place(node: fx.Node) -> bool:

@@ -78,3 +78,10 @@ class CalibrationReport:
 
     def to_dict(self) -> dict:
         return asdict(self)
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "CalibrationReport":
+        """The report from its :meth:`to_dict` form."""
+        data = dict(data)
+        data["layers"] = [LayerCalibration(**layer) for layer in data.get("layers", [])]
+        return cls(**data)

@@ -1,4 +1,4 @@
-"""Which original channels a calibrated conversion keeps, as whole orbits.
+"""Which original channels a calibrated conversion keeps, as whole orbits (docs/design.md §9.3).
 
 At the ``channels`` budget a layer of C channels becomes C/|G| orbits; calibration lets orbit o
 stand for one kept original channel (slot 0 reproduces it, the other slots its moved copies).
@@ -24,22 +24,14 @@ import math
 import torch
 from torch import fx, nn
 
-from orbify.transfer.channels import dense_from_groups
+from orbify.calibration.span import OrbitCovariance, SpanRequest, greedy_orbits
 from orbify.graph.tracing import shape
 from orbify.symmetry.groups import Group
-from orbify.transfer.matching import ChannelClasses, chooses_channels
-from orbify.calibration.span import OrbitCovariance, SpanRequest, greedy_orbits
+from orbify.transfer.kinds import chooses_channels
+from orbify.transfer.loading import out_first_weight
+from orbify.transfer.matching import ChannelClasses
 
 SELECTIONS = ("importance", "reconstruction")
-LAYER_TYPES = (nn.Conv2d, nn.ConvTranspose2d, nn.Linear)
-
-
-def out_first_weight(module: nn.Module) -> torch.Tensor:
-    """A conv/linear weight with output channels first, groups made dense: (out, in, *kernel)."""
-    weight = module.weight.detach()
-    if isinstance(module, nn.ConvTranspose2d):
-        weight = weight.transpose(0, 1)
-    return dense_from_groups(weight, getattr(module, "groups", 1))
 
 
 def following_norm(node: fx.Node, gm: fx.GraphModule) -> nn.Module | None:

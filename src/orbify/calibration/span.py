@@ -6,7 +6,7 @@ The next layer can use all these features. A good set of kept channels is one wh
 explain the values the next layers read, on every copy of the images. With the covariance of
 the features ã over the calibration images (positions are samples), the kept channels are
 chosen greedily: each step adds the channel whose block of |G| features most reduces the
-remaining weighted variance of all features (a block form of orthogonal matching pursuit);
+remaining weighted variance of all features (a block form of orthogonal matching pursuit; docs/design.md §9.3);
 conditioning on a chosen block removes what it explains from every other. The weight of a
 feature is how strongly the next layers read its channel (Σ_o ‖W[o, c]‖²). Channels that are
 moved copies of one another explain each other, so the choice spreads over distinct patterns.

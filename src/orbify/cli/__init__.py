@@ -8,17 +8,8 @@ traceback; ``orbify --debug COMMAND`` shows the traceback.
 
 from __future__ import annotations
 
-
-from orbify.cli.app import app, main
-
 # Command modules register themselves on `app` when imported.
-from orbify.cli import sizes
-from orbify.cli import convert
-from orbify.cli import demo
-from orbify.cli import export
-from orbify.cli import check
-from orbify.cli import summary
-from orbify.cli import tune
-from orbify.cli import recipes
+from orbify.cli import check, convert, demo, export, recipes, sizes, summary, tune  # noqa: F401
+from orbify.cli.app import app, main
 
 __all__ = ["app", "main"]

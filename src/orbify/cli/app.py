@@ -1,21 +1,22 @@
-"""The typer application, the shared options and the error handling of every command."""
+"""The typer application, its consoles and the error handling of every command."""
 
 from __future__ import annotations
 
-import sys
 import traceback
-from pathlib import Path
 from typing import Optional
 
 import typer
 from rich.console import Console
 from typer.core import TyperGroup
 
-from orbify.errors import OptionError, OrbifyError
+from orbify.errors import OrbifyError
 
 console = Console()
 errors = Console(stderr=True)
 _state = {"debug": False}
+
+#: The order ``orbify --help`` lists the commands in (not the order their modules happen to be imported).
+COMMAND_ORDER = ("sizes", "convert", "demo", "export", "check", "summary", "diff", "tune", "recipes")
 
 
 class _OrbifyGroup(TyperGroup):
@@ -34,6 +35,10 @@ class _OrbifyGroup(TyperGroup):
             errors.print(f"[bold red]error:[/] {error}", highlight=False, soft_wrap=True)
             ctx.exit(error.exit_code)
 
+    def list_commands(self, ctx) -> list[str]:
+        names = super().list_commands(ctx)
+        return sorted(names, key=lambda name: COMMAND_ORDER.index(name) if name in COMMAND_ORDER else len(names))
+
 
 app = typer.Typer(
     cls=_OrbifyGroup,
@@ -44,31 +49,11 @@ app = typer.Typer(
     pretty_exceptions_enable=False,
     rich_markup_mode="rich",
 )
+
+
 @app.callback()
 def _root(debug: bool = typer.Option(False, "--debug", help="Show the full traceback when a command fails.")) -> None:
     _state["debug"] = debug
-
-
-# Options shared by every command that reads a model ---------------------------------------
-SOURCE_HELP = ("The model: torchvision:NAME (random weights unless --weights), package.module:factory, "
-               "'example' (the bundled model), a converted-model file, or a pickled model (needs --trust-pickle).")
-WeightsOption = typer.Option(None, "--weights", help="A state-dict file to load into the model "
-                             "(read with weights_only=True; never downloaded).", exists=False)
-TrustOption = typer.Option(False, "--trust-pickle", help="Allow loading a whole model pickled with torch.save(model). "
-                           "Unpickling runs arbitrary code stored in the file: use it only for files you made yourself "
-                           "or fully trust.")
-ForceOption = typer.Option(False, "--force", help="Overwrite the output if it exists.")
-
-
-def parse_floats(text: str | None, option: str) -> list[float] | None:
-    """'0.485,0.456,0.406' → [0.485, 0.456, 0.406]; OptionError naming ``option`` when it is not numbers."""
-    if text is None:
-        return None
-    try:
-        return [float(part) for part in text.split(",")]
-    except ValueError as error:
-        raise OptionError(f"{option} must be comma-separated numbers, got {text!r}", where=f"option {option}",
-                          fix=f"write e.g. {option} 0.485,0.456,0.406") from error
 
 
 def main(argv: Optional[list[str]] = None) -> None:
@@ -77,7 +62,7 @@ def main(argv: Optional[list[str]] = None) -> None:
         app(args=argv, standalone_mode=True)
     except KeyboardInterrupt:
         errors.print("interrupted")
-        raise SystemExit(130)
+        raise SystemExit(130) from None
     except SystemExit:
         raise
     except Exception as error:  # an orbify bug or an unexpected library error: say so plainly
@@ -85,4 +70,4 @@ def main(argv: Optional[list[str]] = None) -> None:
             traceback.print_exc()
         errors.print(f"[bold red]unexpected error:[/] {type(error).__name__}: {error}. "
                      "Run again with --debug for the traceback and report it.", highlight=False, soft_wrap=True)
-        raise SystemExit(1)
+        raise SystemExit(1) from error

@@ -1,68 +1,51 @@
-"""``orbify check``: convert a model in memory (or read a converted file) and prove how exact it is.
-
-Also holds what the check, summary and diff commands share: the conversion options and reading
-a SOURCE into a plain or converted model at a chosen input size.
-"""
+"""``orbify check``: convert a model in memory (or read a converted file) and prove how exact it is."""
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Optional
 
 import torch
 import typer
-from torch import nn
 
-from orbify.verification.check import check_model
-from orbify.conversion.converter import convert
-from orbify.data import ImageSet, read_images
-from orbify.errors import OptionError, OutputError
+from orbify.cli.app import app, console, errors
+from orbify.cli.models import read_pair
+from orbify.cli.options import (
+    SOURCE_HELP,
+    BudgetOption,
+    ChannelsOption,
+    ForceOption,
+    GroupOption,
+    HeadOption,
+    JsonOption,
+    MarkdownOption,
+    TrustOption,
+    WeightsOption,
+    parse_floats,
+)
+from orbify.cli.outputs import refuse_existing
+from orbify.data import read_images
 from orbify.graph.plan import ConversionPlan
+from orbify.recipes.schema import CONVERT_DEFAULTS
 from orbify.transfer.recalibrate import recalibrate_batch_norm
-from orbify.verification.report import (PLOT_FILES,
-    check_markdown,
-    check_renderable,
-    plot_check,
-    write_json,
-    write_text)
-from orbify.files.saving import is_converted_file, load
-from orbify.cli.app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console, errors, parse_floats
-from orbify.cli.convert import choose_input_size, input_channels
-from orbify.cli.models import read_model
-
-GROUP_HELP = "The rotation group: c4 (quarter turns), d4 (quarter turns and mirror images), c2, d1, d2, c8, ..."
-BUDGET_HELP = "channels (same width, ÷|G| parameters), params (≈ same parameters) or fields (×|G| width, lossless)."
-HEAD_HELP = "invariant (a classifier whose output ignores the group) or map (a dense output that moves with the input)."
-JsonOption = typer.Option(None, "--json", help="Also write the figures as JSON to this file.")
-MarkdownOption = typer.Option(None, "--markdown", help="Also write a markdown report to this file.")
-InputSizeOption = typer.Option(None, "--input-size", min=1, help="Height and width of the input (default: as "
-                               "converted for a converted file, the images' size with --inputs, else the safe size "
-                               "nearest the architecture's usual size).")
-ChannelsOption = typer.Option(None, "--channels", min=1, help="Input channels (default: those of the first conv).")
-
-
-@dataclass
-class ModelPair:
-    """A converted model with its plan and the plain original it is compared with."""
-
-    converted: nn.Module
-    plan: ConversionPlan
-    original: nn.Module
+from orbify.verification.check import check_model
+from orbify.verification.report import PLOT_FILES, check_markdown, check_renderable, plot_check, write_json, write_text
 
 
 @app.command()
 def check(
     source: str = typer.Argument(..., help=SOURCE_HELP + " A converted file needs --original (and ignores "
                                  "--group, --budget, --head and --init)."),
-    group: str = typer.Option("d4", "--group", "-g", help=GROUP_HELP),
-    budget: str = typer.Option("channels", "--budget", help=BUDGET_HELP),
-    head: str = typer.Option("invariant", "--head", help=HEAD_HELP),
-    init: str = typer.Option("orbit-average", "--init", help="orbit-average (project the weights) or embed "
+    group: str = GroupOption,
+    budget: str = BudgetOption,
+    head: str = HeadOption,
+    init: str = typer.Option(CONVERT_DEFAULTS["init"], "--init", help="orbit-average (project the weights) or embed "
                              "(fields budget only: the original embedded exactly)."),
     original_source: Optional[str] = typer.Option(None, "--original", help="With a converted file as SOURCE: "
                                                   "the plain model it came from (--weights load into it)."),
-    input_size: Optional[int] = InputSizeOption,
+    input_size: Optional[int] = typer.Option(None, "--input-size", min=1, help="Height and width of the input "
+                                             "(default: as converted for a converted file, the images' size with "
+                                             "--inputs, else the safe size nearest the architecture's usual size)."),
     inputs: Optional[Path] = typer.Option(None, "--inputs", help="An image folder (optionally one sub-folder per "
                                           "class) or an .npz file with 'images' (and 'labels'); default random "
                                           "normal images."),
@@ -121,49 +104,5 @@ def check(
         raise typer.Exit(1)
 
 
-# -- shared by check, summary and diff ---------------------------------------------------------------------
-def read_pair(source: str, original_source: str | None, weights: Path | None, trust_pickle: bool, group: str,
-              budget: str, head: str, init: str, input_size: int | None, channels: int | None,
-              images: ImageSet | None = None) -> ModelPair:
-    """The converted model, its plan and the original: converted in memory, or read from a converted file."""
-    if is_converted_source(source):
-        if original_source is None:
-            raise OptionError(f"{source!r} is a converted file; the check needs the plain model it came from",
-                              where="option --original",
-                              fix="add --original SOURCE (and --weights for its weights), e.g. --original "
-                                  "torchvision:resnet18 --weights resnet18.pt")
-        loaded = load(source)
-        original = read_model(original_source, weights, trust_pickle).module
-        return ModelPair(loaded.module, loaded.plan, original)
-    if original_source is not None:
-        raise OptionError("--original is for a converted file as SOURCE; here SOURCE is converted in memory",
-                          where="option --original", fix="leave out --original, or give a converted (.orb) file")
-    original = read_model(source, weights, trust_pickle).module
-    example = images.images[:1] if images is not None else example_input(original, source, input_size, channels)
-    converted, plan = convert(original, group, budget, head, example, init=init)
-    return ModelPair(converted, plan, original)
-
-
-def example_input(model: nn.Module, source: str, input_size: int | None, channels: int | None) -> torch.Tensor:
-    """A zero image (1, C, S, S) at the given size, or at the safe size nearest the architecture's usual one."""
-    channels = channels or input_channels(model)
-    size = choose_input_size(model, source, requested=input_size, channels=channels).size
-    return torch.zeros(1, channels, size, size)
-
-
-def is_converted_source(source: str) -> bool:
-    """True when SOURCE names an existing converted-model file."""
-    path = Path(source)
-    return path.is_file() and is_converted_file(path)
-
-
 def _random_inputs(plan: ConversionPlan, count: int) -> torch.Tensor:
     return torch.randn(count, *plan.input_shape[1:], generator=torch.Generator().manual_seed(1))
-
-
-def refuse_existing(paths: list[Path | None], force: bool) -> None:
-    """Fail before any work when an output exists and --force is not given."""
-    for path in paths:
-        if path is not None and path.exists() and not force:
-            raise OutputError(f"The output file {str(path)!r} already exists",
-                              fix="choose another path, or pass --force to replace it")

@@ -1,115 +1,46 @@
 """``orbify convert``: turn a plain model into its rotation-tied counterpart and save it.
 
-The command parses its options, picks the input size (see :func:`choose_input_size`), calls
+The command parses its options, picks the input size (see :func:`orbify.graph.sizes.choose_input_size`), calls
 :func:`orbify.convert`, measures the result and writes it with :func:`orbify.save`.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Optional
 
 import torch
 import typer
 from rich.table import Table
-from torch import nn
 
-from orbify.symmetry.groups import approximate_note
-from orbify.verification.check import CheckReport, check_model, random_inputs
-from orbify.conversion.converter import MATCH_DEFAULT, convert
-from orbify.data import read_images
-from orbify.errors import OptionError, OutputError
-from orbify.symmetry.groups import parse_group
-from orbify.graph.plan import BUDGETS, HEADS, INITS, ConversionPlan
-from orbify.common.options import check_choice
-from orbify.recipes import find_recipe_for, load_recipe, merge_options
-from orbify.recipes.schema import CALIBRATION_IMAGES
-from orbify.verification.report import error, ratio, si
-from orbify.files.saving import is_converted_file, require_reference, save
-from orbify.graph.sizes import SizeChecker
-from orbify.files.sources import TORCHVISION_PREFIX
-from orbify.cli.app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console, parse_floats
+from orbify.cli.app import app, console
 from orbify.cli.models import read_model
+from orbify.cli.options import (
+    BUDGET_HELP,
+    GROUP_HELP,
+    HEAD_HELP,
+    SOURCE_HELP,
+    ChannelsOption,
+    ForceOption,
+    TrustOption,
+    WeightsOption,
+    parse_floats,
+)
+from orbify.cli.outputs import refuse_output
+from orbify.common.options import check_choice
+from orbify.conversion.converter import convert
+from orbify.data import read_images
+from orbify.errors import OptionError
+from orbify.files.saving import is_converted_file, require_reference, save
+from orbify.files.sources import EXAMPLE_SIZE, IMAGENET_SIZE, usual_input_size
+from orbify.graph.plan import BUDGETS, HEADS, INITS, ConversionPlan
+from orbify.graph.sizes import choose_input_size, input_channels
+from orbify.recipes import find_recipe_for, load_recipe, merge_options
+from orbify.recipes.schema import CALIBRATION_IMAGES, CONVERT_DEFAULTS
+from orbify.symmetry.groups import approximate_note, parse_group
+from orbify.verification.check import CheckReport, check_model, random_inputs
+from orbify.verification.report import error, ratio, si
 
-IMAGENET_SIZE = 224
-"""The usual input side of ImageNet backbones (torchvision's classification models; common practice)."""
-
-EXAMPLE_SIZE = 33
-"""The tile side of the bundled example (see :mod:`orbify.example.data`)."""
-
-
-@dataclass(frozen=True)
-class SizeChoice:
-    """The input side a conversion uses and, in words, why."""
-
-    size: int
-    reason: str
-
-
-def usual_input_size(source: str) -> tuple[int, str]:
-    """The input side the architecture is usually run at, with what that guess rests on.
-
-    ``example`` → 33 (its tile size); ``torchvision:NAME`` → 224 (ImageNet backbones); anything
-    else → 224, the most common size of pretrained backbones.
-    """
-    if source == "example":
-        return EXAMPLE_SIZE, "the bundled example's tile size"
-    if source.startswith(TORCHVISION_PREFIX):
-        return IMAGENET_SIZE, "the usual input of torchvision's ImageNet backbones"
-    return IMAGENET_SIZE, "the usual input of ImageNet backbones, assumed for a model of unknown origin"
-
-
-def choose_input_size(model: nn.Module, source: str, *, requested: int | None = None,
-                      recipe_size: int | None = None, recipe_name: str | None = None,
-                      channels: int = 3) -> SizeChoice:
-    """Pick the input side for converting ``model`` and say why.
-
-    In order: the ``requested`` size (kept even when unsafe — the reason then names the first
-    strided op that breaks and the nearest safe sizes), the recipe's size, else the safe size
-    nearest :func:`usual_input_size`. A size is *safe* when every strided op samples a grid that
-    quarter turns map onto themselves (:class:`orbify.graph.sizes.SizeChecker`).
-    """
-    checker = SizeChecker(model, channels)
-    if requested is not None:
-        return SizeChoice(requested, "given with --input-size" + _safety(checker, requested))
-    if recipe_size is not None:
-        return SizeChoice(recipe_size, f"the size of recipe {recipe_name!r}" + _safety(checker, recipe_size))
-    usual, why = usual_input_size(source)
-    nearest = checker.safe_sizes(usual, 1)
-    if not nearest:
-        return SizeChoice(usual, f"{why}; no safe size lies near it" + _safety(checker, usual))
-    if nearest[0] == usual:
-        return SizeChoice(usual, f"{why}, and safe")
-    broken = checker.violations(usual)[0]
-    return SizeChoice(nearest[0], f"the safe size nearest {usual} ({why}); {usual} itself is not safe: {broken}")
-
-
-def _safety(checker: SizeChecker, size: int) -> str:
-    """'' for a safe size, else a warning naming the first broken op and the nearest safe sizes."""
-    if checker.is_safe(size):
-        return ", safe"
-    broken = checker.violations(size)
-    first = f": {broken[0]}" if broken else ""
-    nearest = ", ".join(str(s) for s in checker.safe_sizes(size, 3))
-    return (f", NOT safe{first}. The converted model is not exactly equivariant at this size; "
-            f"safe sizes nearby: {nearest or 'none found'}")
-
-
-def input_channels(model: nn.Module) -> int:
-    """Input channels of ``model``: those of its first conv layer, else 3 (RGB)."""
-    for module in model.modules():
-        if isinstance(module, nn.Conv2d):
-            return module.in_channels
-    return 3
-
-
-GROUP_HELP = ("The rotation group: d4 (quarter turns and mirror images), c4 (quarter turns), c2, d1, d2; "
-              "c8, d8, ... rotate approximately.")
-BUDGET_HELP = ("channels: same width, ÷|G| parameters, same MACs; params: ≈ same parameters, ×|G| MACs; "
-               "fields: ×|G| width, the original embedded losslessly.")
-HEAD_HELP = ("invariant: a classifier whose output ignores the group; map: a dense output (mask) that moves "
-             "with the input.")
 INIT_HELP = ("orbit-average: project the pretrained weights onto the tied ones; embed (fields budget only): "
              "start exactly at the original averaged over the group; calibrated: refit every layer on unlabeled "
              "images (--calibration) so the model starts close to the original averaged over the group.")
@@ -117,25 +48,29 @@ QUICK_CHECK_IMAGES = 2
 """Random images the command checks the converted output's invariance on (a full check: orbify check)."""
 
 
+def _recipe_default(option: str) -> str:
+    """The end of a conversion option's help: the recipe's value, else :func:`orbify.convert`'s default."""
+    return f" Default: the recipe's, else {CONVERT_DEFAULTS[option]}."
+
+
 @app.command("convert")
 def convert_command(
     source: str = typer.Argument(..., help=SOURCE_HELP),
     out: Path = typer.Option(..., "--out", "-o", help="The converted-model file to write (.orb)."),
-    group: Optional[str] = typer.Option(None, "--group", "-g", help=GROUP_HELP + " Default: the recipe's, else d4."),
-    budget: Optional[str] = typer.Option(None, "--budget", help=BUDGET_HELP + " Default: the recipe's, else channels."),
-    head: Optional[str] = typer.Option(None, "--head", help=HEAD_HELP + " Default: the recipe's, else invariant."),
-    init: Optional[str] = typer.Option(None, "--init", help=INIT_HELP + " Default: the recipe's, else orbit-average."),
+    group: Optional[str] = typer.Option(None, "--group", "-g", help=GROUP_HELP + _recipe_default("group")),
+    budget: Optional[str] = typer.Option(None, "--budget", help=BUDGET_HELP + _recipe_default("budget")),
+    head: Optional[str] = typer.Option(None, "--head", help=HEAD_HELP + _recipe_default("head")),
+    init: Optional[str] = typer.Option(None, "--init", help=INIT_HELP + _recipe_default("init")),
     match: Optional[bool] = typer.Option(None, "--match/--no-match", help="Choose which original channels share an "
                                          "orbit so that the projection loses the least (default: the recipe's, "
-                                         "else on)."),
+                                         f"else {'on' if CONVERT_DEFAULTS['match'] else 'off'})."),
     input_size: Optional[int] = typer.Option(None, "--input-size", min=1, help="Height and width of the input. "
                                              "Default: the recipe's size, else the safe size nearest the "
-                                             "architecture's usual one (224 for torchvision backbones, 33 for "
-                                             "'example')."),
+                                             f"architecture's usual one ({IMAGENET_SIZE} for torchvision backbones, "
+                                             f"{EXAMPLE_SIZE} for 'example')."),
     recipe_name: Optional[str] = typer.Option(None, "--recipe", help="A shipped recipe's name (orbify recipes "
                                               "lists them) or a recipe .toml file; options given here override it."),
-    channels: Optional[int] = typer.Option(None, "--channels", min=1, help="Input channels (default: those of the "
-                                           "first conv)."),
+    channels: Optional[int] = ChannelsOption,
     stop_at: Optional[str] = typer.Option(None, "--stop-at", help="Convert only up to this graph node or module "
                                           "path: its orbits are pooled there, and later layers keep plain "
                                           "channels (with filters symmetric under the group)."),
@@ -184,7 +119,7 @@ def convert_command(
         options = merge_options(recipe, given)
         recipe_size = options.pop("input_size")
     else:
-        options = {**DEFAULT_OPTIONS, **{key: value for key, value in given.items() if value is not None}}
+        options = {**CONVERT_DEFAULTS, **{key: value for key, value in given.items() if value is not None}}
     check_options(options)
     check_calibration(options["init"], calibration)
     loaded = read_model(source, weights, trust_pickle)
@@ -194,11 +129,11 @@ def convert_command(
     if recipe is not None:
         if input_size is None:
             recipe.check_input_size(original, channels=channels)
-        choice = choose_input_size(original, source, requested=input_size, recipe_size=recipe_size,
-                                   recipe_name=recipe.name, channels=channels)
+        choice = choose_input_size(original, usual_input_size(source), requested=input_size,
+                                   recipe_size=recipe_size, recipe_name=recipe.name, channels=channels)
     else:
         suggest_recipe(loaded.reference or source)
-        choice = choose_input_size(original, source, requested=input_size, channels=channels)
+        choice = choose_input_size(original, usual_input_size(source), requested=input_size, channels=channels)
     console.print(f"input size {choice.size}: {choice.reason}", highlight=False)
     example = torch.zeros(1, channels, choice.size, choice.size)
     images = None
@@ -216,11 +151,6 @@ def convert_command(
         console.print(f"note: {approximate_note(parse_group(plan.group))}", highlight=False)
     console.print(f"wrote {path} ({path.stat().st_size:,} bytes). Next: orbify tune {path} --data IMAGES -o TUNED.orb",
                   highlight=False)
-
-
-DEFAULT_OPTIONS = {"group": "d4", "budget": "channels", "head": "invariant", "init": "orbit-average",
-                   "match": MATCH_DEFAULT, "stop_at": None}
-"""The conversion options used where neither the command line nor a recipe sets them."""
 
 
 def check_options(options: dict) -> None:
@@ -252,18 +182,6 @@ def suggest_recipe(architecture: str) -> None:
                       highlight=False)
 
 
-def refuse_output(out: Path, force: bool, inputs: list[Path | None]) -> None:
-    """Fail before any work when ``out`` exists without ``force``, or when it is one of the ``inputs``
-    (an input is never overwritten, even with ``force``)."""
-    for given in inputs:
-        if given is not None and given.exists() and out.exists() and out.resolve() == given.resolve():
-            raise OutputError(f"The output {str(out)!r} is an input of this command",
-                              fix="write the converted model to a new file; inputs are never overwritten")
-    if out.exists() and not force:
-        raise OutputError(f"The output file {str(out)!r} already exists",
-                          fix="choose another path, or pass --force to replace it")
-
-
 def conversion_table(report: CheckReport, plan: ConversionPlan) -> Table:
     """Parameters, MACs, worst weight residual and output invariance error, before and after."""
     table = Table("", "original", f"converted ({plan.group}, {plan.budget})", title="conversion")
@@ -275,16 +193,16 @@ def conversion_table(report: CheckReport, plan: ConversionPlan) -> Table:
         table.add_row("worst weight residual", "", f"{worst:.2f} ({name})")
     if plan.calibration is not None:
         calibration = plan.calibration
-        agreement = calibration.get("agreement")
-        table.add_row("calibration", "", f"{calibration['images']} images × {calibration['views']} views, "
-                                         f"{calibration['seconds']:.1f} s")
+        agreement = calibration.agreement
+        table.add_row("calibration", "", f"{calibration.images} images × {calibration.views} views, "
+                                         f"{calibration.seconds:.1f} s")
         table.add_row("top-1 agreement with the original averaged over the group", "",
                       "-" if agreement is None else f"{agreement:.3f} (calibration images)")
-        refits = [(layer["error"], layer["target"]) for layer in calibration["layers"] if layer["error"] is not None]
+        refits = [(layer.error, layer.target) for layer in calibration.layers if layer.error is not None]
         if refits:
             worst_refit, refit_name = max(refits)
             table.add_row("worst refit (unexplained variance)", "", f"{worst_refit:.4f} ({refit_name})")
-        fallbacks = [layer["target"] for layer in calibration["layers"] if layer["error"] is None]
+        fallbacks = [layer.target for layer in calibration.layers if layer.error is None]
         if fallbacks:
             table.add_row("kept orbit averaging", "", ", ".join(fallbacks))
     table.add_row(f"output {report.output_property} error", "",

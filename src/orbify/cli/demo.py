@@ -7,8 +7,9 @@ from pathlib import Path
 import typer
 from rich.table import Table
 
+from orbify.cli.app import app, console
+from orbify.cli.options import ForceOption
 from orbify.example.demo import DemoResult, run_demo
-from orbify.cli.app import ForceOption, app, console
 
 
 @app.command()

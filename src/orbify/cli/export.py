@@ -9,13 +9,14 @@ import torch
 import typer
 from rich.table import Table
 
+from orbify.cli.app import app, console
+from orbify.cli.models import read_model
+from orbify.cli.options import SOURCE_HELP, ForceOption, TrustOption, WeightsOption
 from orbify.errors import ExportError
 from orbify.files.export import FORMATS, export_model, run_exported
 from orbify.files.saving import is_converted_file, load
-from orbify.cli.app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console
-from orbify.cli.models import read_model
+from orbify.files.sources import IMAGENET_SIZE
 
-_DEFAULT_SIZE = 224
 _DEFAULT_CHANNELS = 3
 
 
@@ -26,7 +27,7 @@ def export(
     output: Path = typer.Option(..., "--output", "-o", help="The file to write."),
     input_size: Optional[int] = typer.Option(None, "--input-size", min=1, help="Height and width the file is exported at "
                                              "(default: the size a converted file was converted at, else "
-                                             f"{_DEFAULT_SIZE}). Use a safe size (orbify sizes)."),
+                                             f"{IMAGENET_SIZE}). Use a safe size (orbify sizes)."),
     channels: Optional[int] = typer.Option(None, "--channels", min=1, help="Input channels (default: as converted, else "
                                            f"{_DEFAULT_CHANNELS})."),
     weights: Optional[Path] = WeightsOption,
@@ -46,7 +47,7 @@ def export(
     if input_size is not None:
         spatial = (input_size, input_size)
     else:
-        spatial = recorded[2:] if recorded else (_DEFAULT_SIZE, _DEFAULT_SIZE)
+        spatial = recorded[2:] if recorded else (IMAGENET_SIZE, IMAGENET_SIZE)
     channels = channels or (recorded[1] if recorded else _DEFAULT_CHANNELS)
     example = torch.randn(1, channels, *spatial, generator=torch.Generator().manual_seed(0))
     path = export_model(module, example, output, format, force=force)

@@ -1,10 +1,20 @@
-"""Reading a model for a command: every SOURCE form the command line accepts."""
+"""Reading a model for a command: every SOURCE form the command line accepts, plain or converted."""
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from pathlib import Path
 
-from orbify.files.sources import LoadedSource, load_source
+import torch
+from torch import nn
+
+from orbify.conversion.converter import convert
+from orbify.data import ImageSet
+from orbify.errors import OptionError
+from orbify.files.saving import is_converted_file, load
+from orbify.files.sources import LoadedSource, load_source, usual_input_size
+from orbify.graph.plan import ConversionPlan
+from orbify.graph.sizes import choose_input_size, input_channels
 
 
 def read_model(source: str, weights: Path | None = None, trust_pickle: bool = False) -> LoadedSource:
@@ -12,3 +22,47 @@ def read_model(source: str, weights: Path | None = None, trust_pickle: bool = Fa
     if source == "example":
         return load_source("orbify.example:load_example_model", weights=weights, trust_pickle=trust_pickle)
     return load_source(source, weights=weights, trust_pickle=trust_pickle)
+
+
+def is_converted_source(source: str) -> bool:
+    """True when SOURCE names an existing converted-model file."""
+    path = Path(source)
+    return path.is_file() and is_converted_file(path)
+
+
+@dataclass
+class ModelPair:
+    """A converted model with its plan and the plain original it is compared with."""
+
+    converted: nn.Module
+    plan: ConversionPlan
+    original: nn.Module
+
+
+def read_pair(source: str, original_source: str | None, weights: Path | None, trust_pickle: bool, group: str,
+              budget: str, head: str, init: str, input_size: int | None, channels: int | None,
+              images: ImageSet | None = None) -> ModelPair:
+    """The converted model, its plan and the original: converted in memory, or read from a converted file."""
+    if is_converted_source(source):
+        if original_source is None:
+            raise OptionError(f"{source!r} is a converted file; the check needs the plain model it came from",
+                              where="option --original",
+                              fix="add --original SOURCE (and --weights for its weights), e.g. --original "
+                                  "torchvision:resnet18 --weights resnet18.pt")
+        loaded = load(source)
+        original = read_model(original_source, weights, trust_pickle).module
+        return ModelPair(loaded.module, loaded.plan, original)
+    if original_source is not None:
+        raise OptionError("--original is for a converted file as SOURCE; here SOURCE is converted in memory",
+                          where="option --original", fix="leave out --original, or give a converted (.orb) file")
+    original = read_model(source, weights, trust_pickle).module
+    example = images.images[:1] if images is not None else example_input(original, source, input_size, channels)
+    converted, plan = convert(original, group, budget, head, example, init=init)
+    return ModelPair(converted, plan, original)
+
+
+def example_input(model: nn.Module, source: str, input_size: int | None, channels: int | None) -> torch.Tensor:
+    """A zero image (1, C, S, S) at the given size, or at the safe size nearest the architecture's usual one."""
+    channels = channels or input_channels(model)
+    size = choose_input_size(model, usual_input_size(source), requested=input_size, channels=channels).size
+    return torch.zeros(1, channels, size, size)

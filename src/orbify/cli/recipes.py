@@ -6,8 +6,8 @@ import typer
 from rich.syntax import Syntax
 from rich.table import Table
 
-from orbify.recipes import list_recipes, load_recipe, shipped_folder
 from orbify.cli.app import app, console
+from orbify.recipes import list_recipes, load_recipe, shipped_folder
 
 recipes_app = typer.Typer(
     invoke_without_command=True,

@@ -8,15 +8,17 @@ from typing import Optional
 import typer
 from rich.table import Table
 
-from orbify.graph.sizes import SizeChecker
-from orbify.cli.app import SOURCE_HELP, TrustOption, WeightsOption, app, console
+from orbify.cli.app import app, console
 from orbify.cli.models import read_model
+from orbify.cli.options import SOURCE_HELP, TrustOption, WeightsOption
+from orbify.files.sources import IMAGENET_SIZE
+from orbify.graph.sizes import SizeChecker
 
 
 @app.command()
 def sizes(
     source: str = typer.Argument(..., help=SOURCE_HELP),
-    near: int = typer.Option(224, "--near", help="Look for safe sizes near this one."),
+    near: int = typer.Option(IMAGENET_SIZE, "--near", help="Look for safe sizes near this one."),
     count: int = typer.Option(5, "--count", help="How many safe sizes to list."),
     channels: int = typer.Option(3, "--channels", help="Input channels of the model."),
     weights: Optional[Path] = WeightsOption,

@@ -8,25 +8,35 @@ from typing import Optional
 import torch
 import typer
 
+from orbify.cli.app import app, console
+from orbify.cli.models import is_converted_source, read_model
+from orbify.cli.options import (
+    BUDGET_HELP,
+    SOURCE_HELP,
+    BudgetOption,
+    ChannelsOption,
+    ForceOption,
+    HeadOption,
+    JsonOption,
+    MarkdownOption,
+    TrustOption,
+    WeightsOption,
+)
+from orbify.cli.outputs import refuse_existing
 from orbify.conversion.converter import convert
-from orbify.verification.report import (diff_markdown,
+from orbify.files.saving import load
+from orbify.files.sources import usual_input_size
+from orbify.graph.sizes import input_channels
+from orbify.recipes.schema import CONVERT_DEFAULTS
+from orbify.verification.report import (
+    diff_markdown,
     diff_table,
     summary_markdown,
     summary_table,
     write_json,
-    write_text)
-from orbify.files.saving import load
+    write_text,
+)
 from orbify.verification.summary import ModelSummary, diff_summaries, summarize
-from orbify.cli.app import SOURCE_HELP, ForceOption, TrustOption, WeightsOption, app, console
-from orbify.cli.check import (BUDGET_HELP,
-    HEAD_HELP,
-    ChannelsOption,
-    JsonOption,
-    MarkdownOption,
-    is_converted_source,
-    refuse_existing)
-from orbify.cli.convert import input_channels, usual_input_size
-from orbify.cli.models import read_model
 
 SIZE_HELP = ("Height and width of the input (default: as converted for a converted file, else the architecture's "
              "usual size, e.g. 224 for torchvision models).")
@@ -37,8 +47,8 @@ def summary(
     source: str = typer.Argument(..., help=SOURCE_HELP),
     group: Optional[str] = typer.Option(None, "--group", "-g", help="Convert first with this group (c4, d4, ...) "
                                         "and summarise the converted model; default: the model as it is."),
-    budget: str = typer.Option("channels", "--budget", help=BUDGET_HELP),
-    head: str = typer.Option("invariant", "--head", help=HEAD_HELP),
+    budget: str = BudgetOption,
+    head: str = HeadOption,
     input_size: Optional[int] = typer.Option(None, "--input-size", min=1, help=SIZE_HELP),
     channels: Optional[int] = ChannelsOption,
     json_path: Optional[Path] = JsonOption,
@@ -67,10 +77,11 @@ def diff(
     group: Optional[str] = typer.Option(None, "--group", "-g", help="Convert both A and B with this group."),
     group_a: Optional[str] = typer.Option(None, "--group-a", help="Convert A with this group (overrides --group)."),
     group_b: Optional[str] = typer.Option(None, "--group-b", help="Convert B with this group (overrides --group)."),
-    budget: str = typer.Option("channels", "--budget", help="The budget of both conversions: " + BUDGET_HELP),
+    budget: str = typer.Option(CONVERT_DEFAULTS["budget"], "--budget", help="The budget of both conversions. "
+                               + BUDGET_HELP),
     budget_a: Optional[str] = typer.Option(None, "--budget-a", help="The budget of A's conversion."),
     budget_b: Optional[str] = typer.Option(None, "--budget-b", help="The budget of B's conversion."),
-    head: str = typer.Option("invariant", "--head", help=HEAD_HELP),
+    head: str = HeadOption,
     input_size: Optional[int] = typer.Option(None, "--input-size", min=1, help=SIZE_HELP + " The same for A and B."),
     channels: Optional[int] = ChannelsOption,
     json_path: Optional[Path] = JsonOption,

@@ -16,23 +16,27 @@ import typer
 from rich.table import Table
 from torch import fx, nn
 
+from orbify.cli.app import app, console
+from orbify.cli.models import is_converted_source, read_model
+from orbify.cli.options import ForceOption, TrustOption, parse_floats
+from orbify.cli.outputs import refuse_output
+from orbify.common.options import check_choice
 from orbify.conversion.converter import convert
 from orbify.data import ImageSet, evenly_spaced, read_images
-from orbify.tuning.distributed import process_rank
 from orbify.errors import OptionError
-from orbify.graph.plan import ConversionPlan
-from orbify.common.options import check_choice
-from orbify.recipes.schema import CALIBRATION_IMAGES
 from orbify.files.saving import load, require_reference, save
-from orbify.graph.sizes import SizeChecker
 from orbify.files.sources import TORCHVISION_PREFIX
+from orbify.graph.plan import ConversionPlan
+from orbify.graph.sizes import SizeChecker, input_channels
+from orbify.recipes.schema import CALIBRATION_IMAGES, CONVERT_DEFAULTS
+from orbify.tuning.distributed import process_rank
+from orbify.tuning.loop import tune
+from orbify.tuning.options import SCHEDULES, TuneOptions
+from orbify.tuning.records import TuneResult
 from orbify.tuning.teacher import VIEW_COMBINATIONS
-from orbify.tuning.loop import SCHEDULES, TuneResult, tune
-from orbify.cli.app import ForceOption, TrustOption, app, console, parse_floats
-from orbify.cli.check import is_converted_source
-from orbify.cli.convert import input_channels, refuse_output
-from orbify.cli.models import read_model
 
+_TUNE = TuneOptions()
+"""The defaults of the tuning options, as :func:`orbify.tune` has them."""
 
 TUNE_INITS = ("orbit-average", "calibrated")
 """Initialisations of a SOURCE converted on the fly for tuning (embed needs the fields budget's width)."""
@@ -60,23 +64,24 @@ def tune_command(
                                            "teacher is built from (default: the source the file records)."),
     weights: Optional[Path] = typer.Option(None, "--weights", help="The original's state-dict file (read with "
                                            "weights_only=True); needed for torchvision:NAME originals."),
-    group: str = typer.Option("d4", "--group", "-g", help="With a plain SOURCE: the group to convert to."),
-    budget: str = typer.Option("channels", "--budget", help="With a plain SOURCE: the conversion budget."),
-    init: str = typer.Option("orbit-average", "--init", help="With a plain SOURCE: orbit-average, or calibrated "
-                             f"(every layer refitted first on up to {CALIBRATION_IMAGES} of the --data images, "
+    group: str = typer.Option(CONVERT_DEFAULTS["group"], "--group", "-g",
+                              help="With a plain SOURCE: the group to convert to."),
+    budget: str = typer.Option(CONVERT_DEFAULTS["budget"], "--budget", help="With a plain SOURCE: the conversion budget."),
+    init: str = typer.Option(CONVERT_DEFAULTS["init"], "--init", help="With a plain SOURCE: orbit-average, or "
+                             f"calibrated (every layer refitted first on up to {CALIBRATION_IMAGES} of the --data images, "
                              "without their labels, so tuning starts close to the original averaged over the group)."),
-    epochs: int = typer.Option(10, "--epochs", min=1, help="Training epochs."),
-    lr: float = typer.Option(1e-3, "--lr", help="Peak learning rate (AdamW)."),
-    batch_size: int = typer.Option(64, "--batch-size", min=2, help="Images per process per step."),
-    views: str = typer.Option("probability", "--views", help="How the teacher combines the |G| views: probability "
+    epochs: int = typer.Option(_TUNE.epochs, "--epochs", min=1, help="Training epochs."),
+    lr: float = typer.Option(_TUNE.lr, "--lr", help="Peak learning rate (AdamW)."),
+    batch_size: int = typer.Option(_TUNE.batch_size, "--batch-size", min=2, help="Images per process per step."),
+    views: str = typer.Option(_TUNE.view_combination, "--views", help="How the teacher combines the |G| views: probability "
                               "(original trained with rotations), logit, or most-confident (original trained on "
                               "upright images only: usually far better there)."),
-    label_weight: float = typer.Option(1.0, "--label-weight", min=0.0, help="Weight of the cross-entropy on labels "
+    label_weight: float = typer.Option(_TUNE.label_weight, "--label-weight", min=0.0, help="Weight of the cross-entropy on labels "
                                        "added to the distillation loss (0: distillation only)."),
     use_labels: bool = typer.Option(True, "--labels/--no-labels", help="Use the data's labels when it has them."),
-    schedule: str = typer.Option("cosine", "--schedule", help=f"Learning-rate schedule: {', '.join(SCHEDULES)}."),
-    holdout: float = typer.Option(0.1, "--holdout", help="Share of the images held out for evaluation."),
-    seed: int = typer.Option(0, "--seed", help="Seed of the split, the batch order and every random draw."),
+    schedule: str = typer.Option(_TUNE.schedule, "--schedule", help=f"Learning-rate schedule: {', '.join(SCHEDULES)}."),
+    holdout: float = typer.Option(_TUNE.holdout_fraction, "--holdout", help="Share of the images held out for evaluation."),
+    seed: int = typer.Option(_TUNE.seed, "--seed", help="Seed of the split, the batch order and every random draw."),
     input_size: Optional[int] = typer.Option(None, "--input-size", min=1, help="Resize and centre-crop images to "
                                              "this side (default: the converted model's size; with a SOURCE, the "
                                              "images' own size)."),

@@ -10,10 +10,10 @@ from importlib import resources
 
 from torch import nn
 
+from orbify.common.safe_io import load_torch_weights
 from orbify.errors import CheckpointError
 from orbify.example.data import CLASS_NAMES, make_tiles
 from orbify.example.model import build_example_cnn
-from orbify.common.safe_io import load_torch_weights
 
 __all__ = ["CLASS_NAMES", "WEIGHTS_FILE", "build_example_cnn", "load_example_model", "make_tiles"]
 

@@ -23,23 +23,24 @@ from rich.console import Console
 from torch import nn
 from torch.nn.utils import parametrize
 
-from orbify.layers.bake import bake_model
-from orbify.verification.check import CheckReport, check_model
+from orbify.common.safe_io import atomic_write
 from orbify.conversion.converter import convert
 from orbify.data import ImageSet
 from orbify.errors import OutputError
 from orbify.example import make_tiles
 from orbify.files.export import export_model
-from orbify.common.safe_io import atomic_write
-from orbify.symmetry.groups import Group, parse_group
-from orbify.verification.measure import count_macs, count_params
-from orbify.verification.report import check_markdown, markdown_table, plot_check, write_json, write_text
-from orbify.symmetry.resample import rotate_images
-from orbify.recipes import load_recipe, merge_options
 from orbify.files.saving import save
 from orbify.files.sources import load_source
+from orbify.layers.bake import bake_model
+from orbify.recipes import load_recipe, merge_options
+from orbify.symmetry.groups import Group, parse_group
+from orbify.symmetry.resample import rotate_images
+from orbify.tuning.loop import tune
+from orbify.tuning.records import TuneResult
 from orbify.tuning.teacher import view_logits
-from orbify.tuning.loop import TuneResult, tune
+from orbify.verification.check import CheckReport, check_model
+from orbify.verification.measure import count_macs, count_params
+from orbify.verification.report import check_markdown, markdown_table, plot_check, write_json, write_text
 
 EXAMPLE_SOURCE = "orbify.example:load_example_model"
 """The SOURCE reference of the bundled model (what ``orbify convert example`` reads)."""
@@ -47,23 +48,21 @@ EXAMPLE_SOURCE = "orbify.example:load_example_model"
 RECIPE = "example"
 """The shipped recipe for the bundled model: budget, channel matching, input size and the tuning settings."""
 DEMO_GROUP = "c4"
-"""Quarter turns. Measured with the demo's tuning settings on 600 field tiles, tuning seeds 0 and 1:
-c4 reached 82 % and 80 %, d4 76 % and 76 %. The six particle shapes are mirror-symmetric, so a
-c4 model also recognises the mirrored field tiles, and it keeps twice d4's parameters at the
-same MACs. The recipe's d4 is overridden here as ``--group c4`` would override it."""
+"""Quarter turns: on the demo's field tiles c4 did better than d4 (README.md, "How the numbers in
+this README were measured"). The six particle shapes are mirror-symmetric, so a c4 model also
+recognises mirrored tiles, with twice d4's parameters at the same MACs. The recipe's d4 is
+overridden here as ``--group c4`` would override it."""
 
 DEMO_INIT = "calibrated"
-"""How the converted model starts. Measured with the demo's settings (field tiles, before tuning →
-after tuning with tuning seeds 0 and 1): orbit average 17.7 % → 81.7 % and 82.7 %; calibrated on
-:data:`CALIBRATION_TILES` upright tiles 49.2 % → 83.0 % and 83.3 %. The calibrated model follows
-the original averaged over the group (83 % top-1 agreement on the field tiles), which is itself
-only 52 % accurate there, since the original only ever saw upright tiles; tuning then takes the
-most confident view as teacher."""
+"""How the converted model starts: calibrated on :data:`CALIBRATION_TILES` upright tiles, it follows
+the original averaged over the group, a poor classifier of field tiles since the original only saw
+upright ones; tuning then takes the most confident view as teacher (figures: README.md, "How the
+numbers in this README were measured")."""
 CALIBRATION_TILES = 256
 """Upright training tiles, without their labels, that the calibrated conversion refits on."""
 
 TRAIN_TILES = 2000
-"""Upright tiles the converted model is tuned on (a tenth of them held out by :func:`orbify.tuning.loop`)."""
+"""Upright tiles the converted model is tuned on (a tenth of them held out by :func:`orbify.tuning.loop.tune`)."""
 EVALUATION_TILES = 600
 """Fresh tiles of each split every model is measured on."""
 

@@ -18,10 +18,10 @@ import torch
 import typer
 from torch import nn
 
+from orbify.common.safe_io import save_torch
 from orbify.errors import OptionError, OrbifyError, OutputError
 from orbify.example.data import make_tiles
 from orbify.example.model import build_example_cnn
-from orbify.common.safe_io import save_torch
 
 DEFAULT_SEED = 0
 DEFAULT_EPOCHS = 8

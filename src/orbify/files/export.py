@@ -1,4 +1,4 @@
-"""Exporting a (converted) model for inference without orbify: pt2, TorchScript or ONNX.
+"""Exporting a (converted) model for inference without orbify: pt2, TorchScript or ONNX (docs/design.md §14).
 
 Every format is written from the *baked* model (:func:`orbify.layers.bake.bake_model`, in eval mode),
 so the file holds plain convolutions with the expanded weights and no orbify code:
@@ -26,10 +26,10 @@ from pathlib import Path
 import torch
 from torch import nn
 
-from orbify.layers.bake import bake_model
-from orbify.errors import ExportError, InputShapeError
-from orbify.common.safe_io import PathLike, atomic_write
 from orbify.common.options import check_choice
+from orbify.common.safe_io import PathLike, atomic_write
+from orbify.errors import ExportError, InputShapeError
+from orbify.layers.bake import bake_model
 
 FORMATS = ("pt2", "torchscript", "onnx")
 SUFFIXES = {"pt2": ".pt2", "torchscript": ".pt", "onnx": ".onnx"}
@@ -45,6 +45,22 @@ def export_model(module: nn.Module, example_input: torch.Tensor, path: PathLike,
     for an input that is not a tensor, :class:`ExportError` when the exporter fails or its
     packages are missing, and :class:`~orbify.errors.OutputError` for an existing output without
     ``force``. Nothing is written when it raises.
+
+    Example (a pt2 program that runs without orbify):
+
+    >>> import pathlib, tempfile
+    >>> import torch
+    >>> from torch import nn
+    >>> import orbify
+    >>> model = nn.Sequential(nn.Conv2d(3, 8, 3, padding=1), nn.ReLU(), nn.AdaptiveAvgPool2d(1), nn.Flatten(),
+    ...                       nn.Linear(8, 4)).eval()
+    >>> converted, plan = orbify.convert(model, "c4", example_input=torch.zeros(1, 3, 9, 9))
+    >>> x = torch.randn(2, 3, 9, 9)
+    >>> with tempfile.TemporaryDirectory() as folder:
+    ...     path = orbify.export_model(converted, x[:1], pathlib.Path(folder) / "tiny.pt2")
+    ...     program = torch.export.load(path).module()
+    >>> torch.allclose(program(x), converted(x), atol=1e-6)
+    True
     """
     check_choice("format", format, FORMATS)
     if not isinstance(example_input, torch.Tensor) or example_input.dim() < 1:

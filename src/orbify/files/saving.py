@@ -1,6 +1,6 @@
 """The converted-model file (``.orb``): tied weights plus a JSON description, loaded without pickled code.
 
-A converted-model file is a ``torch.save`` archive of a dict with exactly two entries:
+A converted-model file (docs/design.md §15) is a ``torch.save`` archive of a dict with exactly two entries:
 
 ``"orbify_conversion"``
     A JSON string: ``format`` (:data:`FORMAT_NAME`), ``format_version`` ("major.minor"),
@@ -35,11 +35,12 @@ from pathlib import Path
 import torch
 from torch import fx, nn
 
+from orbify.calibration.report import CalibrationReport
+from orbify.common.safe_io import PathLike, atomic_write, load_torch_weights
 from orbify.conversion.converter import convert
 from orbify.errors import CheckpointError, OptionError, OrbifyError, SourceError
-from orbify.common.safe_io import PathLike, atomic_write, load_torch_weights
-from orbify.graph.plan import ConversionPlan
 from orbify.files.sources import LoadedSource, rebuild, register_file_loader
+from orbify.graph.plan import ConversionPlan
 
 FORMAT_NAME = "orbify-converted-model"
 FORMAT_VERSION = (1, 0)
@@ -83,6 +84,19 @@ def save(converted: fx.GraphModule, plan: ConversionPlan, path: PathLike, *, ref
     has none), :class:`OptionError` for a model that is not a converted GraphModule or check
     figures that are not JSON data, and :class:`~orbify.errors.OutputError` for an output that
     exists without ``force`` or cannot be written. Nothing is written when it raises.
+
+    Example (the bundled example architecture, rebuilt from its factory when the file is loaded):
+
+    >>> import pathlib, tempfile
+    >>> import torch
+    >>> import orbify
+    >>> from orbify.example.model import build_example_cnn
+    >>> converted, plan = orbify.convert(build_example_cnn().eval(), "c4", example_input=torch.zeros(1, 3, 33, 33))
+    >>> with tempfile.TemporaryDirectory() as folder:
+    ...     path = orbify.save(converted, plan, pathlib.Path(folder) / "example-c4.orb",
+    ...                        reference="orbify.example.model:build_example_cnn")
+    ...     print(path.name, path.stat().st_size > 0)
+    example-c4.orb True
     """
     require_reference(reference)
     if not isinstance(converted, fx.GraphModule):
@@ -152,6 +166,21 @@ def load(path: PathLike) -> LoadedConversion:
     Raises :class:`CheckpointError` when the file is missing, empty, truncated, damaged, not a
     converted-model file, of an incompatible major format version, names a source that cannot be
     rebuilt here, or holds a state dict that does not fit the rebuilt model (the keys are named).
+
+    Example (save, then load: the same weights, the model in eval mode, the plan and the recorded source):
+
+    >>> import pathlib, tempfile
+    >>> import torch
+    >>> import orbify
+    >>> from orbify.example.model import build_example_cnn
+    >>> converted, plan = orbify.convert(build_example_cnn().eval(), "c4", example_input=torch.zeros(1, 3, 33, 33))
+    >>> with tempfile.TemporaryDirectory() as folder:
+    ...     path = orbify.save(converted, plan, pathlib.Path(folder) / "example-c4.orb",
+    ...                        reference="orbify.example.model:build_example_cnn")
+    ...     loaded = orbify.load(path)
+    >>> x = torch.randn(2, 3, 33, 33)
+    >>> torch.equal(loaded.module(x), converted(x)), loaded.plan.group, loaded.metadata["source"]
+    (True, 'c4', 'orbify.example.model:build_example_cnn')
     """
     source = Path(path)
     content = load_torch_weights(source, what=_WHAT)
@@ -162,7 +191,7 @@ def load(path: PathLike) -> LoadedConversion:
     module = _rebuild(source, metadata)
     _load_state(source, module, state)
     try:
-        plan = ConversionPlan.from_dict(metadata["plan"])
+        plan = ConversionPlan.from_dict(metadata["plan"], CalibrationReport.from_dict)
     except (TypeError, KeyError, ValueError) as error:
         raise CheckpointError(f"The conversion plan in the {_WHAT} {str(source)!r} cannot be read ({error})",
                               fix="read it with the orbify version that wrote it "

@@ -34,8 +34,8 @@ from typing import Callable
 import torch
 from torch import nn
 
-from orbify.errors import CheckpointError, SourceError, TrustError
 from orbify.common.safe_io import PathLike, damaged_file_error, load_torch_weights, unsafe_globals
+from orbify.errors import CheckpointError, SourceError, TrustError
 
 TORCHVISION_PREFIX = "torchvision:"
 FACTORY_PATTERN = re.compile(r"^(?P<module>[A-Za-z_][\w.]*):(?P<attribute>[A-Za-z_][\w.]*)$")
@@ -44,6 +44,12 @@ _ACCEPTED_FORMS = (
     "or the path of a model file"
 )
 _LISTED_KEYS = 5
+
+IMAGENET_SIZE = 224
+"""The usual input side of ImageNet backbones (torchvision's classification models; common practice)."""
+
+EXAMPLE_SIZE = 33
+"""The tile side of the bundled example, the SOURCE ``example`` (see :mod:`orbify.example.data`)."""
 
 
 @dataclass(frozen=True)
@@ -119,6 +125,19 @@ def rebuild(reference: str) -> nn.Module:
             fix="use torchvision:NAME or package.module:factory",
         )
     return module.eval()
+
+
+def usual_input_size(source: str) -> tuple[int, str]:
+    """The input side the architecture a SOURCE names is usually run at, with what that guess rests on.
+
+    ``example`` → 33 (its tile size); ``torchvision:NAME`` → 224 (ImageNet backbones); anything
+    else → 224, the most common size of pretrained backbones.
+    """
+    if source == "example":
+        return EXAMPLE_SIZE, "the bundled example's tile size"
+    if source.startswith(TORCHVISION_PREFIX):
+        return IMAGENET_SIZE, "the usual input of torchvision's ImageNet backbones"
+    return IMAGENET_SIZE, "the usual input of ImageNet backbones, assumed for a model of unknown origin"
 
 
 def _build(spec: str, *, trust_pickle: bool) -> LoadedSource:

@@ -1,8 +1,9 @@
-"""The op rule table: what every graph op does to a layout (design.md section 5).
+"""The op rule table: what every graph op does to a layout (docs/design.md §5).
 
 A rule takes a :class:`Step` (the node, the layouts of its tensor inputs and the conversion
-context) and returns the layout of the node's output, ``None`` for non-tensor values. Rules that
-build tied layers (conv, linear, norms) ask the context to replace the module. Unknown ops stop
+context, a :class:`ConversionContext`) and returns the layout of the node's output, ``None`` for
+non-tensor values. Rules that build tied layers (conv, linear, norms) ask the context to replace
+the module. Unknown ops stop
 the conversion with an :class:`~orbify.errors.UnsupportedOpError` naming the node.
 
 To support a new op, add one entry to :data:`MODULE_RULES`, :data:`FUNCTION_RULES` or
@@ -13,8 +14,9 @@ from __future__ import annotations
 
 import operator
 import sys
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Callable
+from typing import Protocol
 
 import torch
 import torch.nn.functional as F
@@ -24,15 +26,12 @@ from orbify.errors import UnsupportedOpError
 from orbify.graph.tracing import describe, shape
 from orbify.symmetry.layouts import Flat, Layout, Orbit, Plain
 
-if TYPE_CHECKING:
-    from orbify.conversion.converter import Converter
-
 
 @dataclass
 class Step:
     node: fx.Node
     inputs: list[Layout | None]   # layouts of node.all_input_nodes, in order
-    ctx: "Converter"
+    ctx: ConversionContext
 
     @property
     def layout(self) -> Layout | None:
@@ -45,6 +44,27 @@ class Step:
     def refuse(self, what: str, fix: str) -> UnsupportedOpError:
         seen = ", ".join(str(layout) for layout in self.inputs if layout is not None) or "none"
         return UnsupportedOpError(f"{what} (input layouts: {seen})", where=describe(self.node), fix=fix)
+
+
+class ConversionContext(Protocol):
+    """What the rules need from the conversion they run in (:mod:`orbify.conversion` provides it).
+
+    The ``convert_*`` methods replace the module of ``step.node`` by its tied counterpart, carry the
+    original's weights into it, record it in the plan and return its output layout.
+    """
+
+    @property
+    def layouts(self) -> Mapping[fx.Node, Layout | None]:
+        """The layout of every value walked so far (None: not a tensor)."""
+
+    def convert_layer(self, step: Step) -> Layout:
+        """A conv, transposed conv or linear layer."""
+
+    def convert_batch_norm(self, step: Step) -> Layout:
+        """A batch norm: an orbit batch norm on orbit channels, a plain one otherwise."""
+
+    def convert_affine_norm(self, step: Step) -> Layout:
+        """A group norm or layer norm, its affine parameters tied along orbits."""
 
 
 Rule = Callable[[Step], "Layout | None"]
@@ -64,11 +84,11 @@ def elementwise(step: Step) -> Layout | None:
     layouts = [layout for _, layout in tensors if layout is not None]
     if not layouts:
         return None
-    varying = [l for (arg, l) in tensors if l is not None and not broadcasts_channel(arg)]
+    varying = [layout for arg, layout in tensors if layout is not None and not broadcasts_channel(arg)]
     if not varying:
         return layouts[0]
     first = varying[0]
-    if any(l != first for l in varying[1:]):
+    if any(layout != first for layout in varying[1:]):
         raise step.refuse("An elementwise op combines tensors of different layouts",
                           "make both operands come from layers of the same width, or " + CONVERT_UP_TO)
     return first
@@ -146,12 +166,8 @@ def getitem(step: Step) -> Layout | None:
     raise step.refuse("Indexing a tensor", CONVERT_UP_TO)
 
 
-def conv(step: Step) -> Layout:
-    return step.ctx.convert_conv(step)
-
-
-def linear(step: Step) -> Layout:
-    return step.ctx.convert_linear(step)
+def tied_layer(step: Step) -> Layout:
+    return step.ctx.convert_layer(step)
 
 
 def batch_norm(step: Step) -> Layout:
@@ -189,9 +205,9 @@ _POINTWISE_MODULES = (nn.ReLU, nn.ReLU6, nn.SiLU, nn.GELU, nn.Hardswish, nn.Hard
 
 MODULE_RULES: dict[type, Rule] = {
     **{cls: passthrough for cls in _POINTWISE_MODULES},
-    nn.Conv2d: conv,
-    nn.ConvTranspose2d: conv,
-    nn.Linear: linear,
+    nn.Conv2d: tied_layer,
+    nn.ConvTranspose2d: tied_layer,
+    nn.Linear: tied_layer,
     nn.BatchNorm1d: batch_norm,
     nn.BatchNorm2d: batch_norm,
     nn.GroupNorm: affine_norm,

@@ -1,7 +1,7 @@
 """Safe input sizes: where every strided op samples a grid that the rotations map onto itself.
 
 A strided conv or pool commutes with 90° rotations exactly when ``H + 2·padding − dilation·(k−1) − 1``
-is divisible by the stride, in both spatial axes (design.md section 6). A transposed conv is
+is divisible by the stride, in both spatial axes (docs/design.md §6). A transposed conv is
 symmetric when it has no output padding. Shapes are propagated on the ``meta`` device, so checking
 a size costs no arithmetic.
 """
@@ -16,7 +16,6 @@ import torch.nn.functional as F
 from torch import fx, nn
 
 from orbify.errors import InputShapeError
-
 from orbify.graph.tracing import describe, input_error, trace
 
 
@@ -138,5 +137,68 @@ class SizeChecker:
 
 
 def safe_sizes(model: nn.Module, near: int, count: int = 5, channels: int = 3) -> list[int]:
-    """Square input sizes near ``near`` at which every strided op of ``model`` is exact."""
+    """Square input sizes near ``near`` at which every strided op of ``model`` is exact.
+
+    Up to ``count`` sizes, nearest first (ties: the smaller first); ``channels`` is the model's input channels.
+
+    >>> from torch import nn
+    >>> import orbify
+    >>> model = nn.Sequential(nn.Conv2d(3, 8, 3, stride=2, padding=1), nn.ReLU(), nn.Conv2d(8, 8, 3, stride=2))
+    >>> orbify.safe_sizes(model, near=32, count=3)
+    [33, 29, 37]
+    """
     return SizeChecker(model, channels).safe_sizes(near, count)
+
+
+def input_channels(model: nn.Module) -> int:
+    """Input channels of ``model``: those of its first conv layer, else 3 (RGB)."""
+    for module in model.modules():
+        if isinstance(module, nn.Conv2d):
+            return module.in_channels
+    return 3
+
+
+@dataclass(frozen=True)
+class SizeChoice:
+    """The input side a conversion uses and, in words, why."""
+
+    size: int
+    reason: str
+
+
+def choose_input_size(model: nn.Module, usual: tuple[int, str], *, requested: int | None = None,
+                      recipe_size: int | None = None, recipe_name: str | None = None,
+                      channels: int = 3) -> SizeChoice:
+    """Pick the input side for converting ``model`` and say why.
+
+    In order: the ``requested`` size (kept even when unsafe — the reason then names the first
+    strided op that breaks and the nearest safe sizes), the recipe's size, else the safe size
+    nearest ``usual``, the side the architecture is usually run at with what that guess rests on
+    (:func:`orbify.files.sources.usual_input_size`). A size is *safe* when every strided op
+    samples a grid that quarter turns map onto themselves (:class:`SizeChecker`).
+    """
+    checker = SizeChecker(model, channels)
+    if requested is not None:
+        return SizeChoice(requested, "given with --input-size" + _safety(checker, requested))
+    if recipe_size is not None:
+        return SizeChoice(recipe_size, f"the size of recipe {recipe_name!r}" + _safety(checker, recipe_size))
+    usual_size, why = usual
+    nearest = checker.safe_sizes(usual_size, 1)
+    if not nearest:
+        return SizeChoice(usual_size, f"{why}; no safe size lies near it" + _safety(checker, usual_size))
+    if nearest[0] == usual_size:
+        return SizeChoice(usual_size, f"{why}, and safe")
+    broken = checker.violations(usual_size)[0]
+    return SizeChoice(nearest[0], f"the safe size nearest {usual_size} ({why}); {usual_size} itself is not safe: "
+                                  f"{broken}")
+
+
+def _safety(checker: SizeChecker, size: int) -> str:
+    """', safe' for a safe size, else a warning naming the first broken op and the nearest safe sizes."""
+    if checker.is_safe(size):
+        return ", safe"
+    broken = checker.violations(size)
+    first = f": {broken[0]}" if broken else ""
+    nearest = ", ".join(str(s) for s in checker.safe_sizes(size, 3))
+    return (f", NOT safe{first}. The converted model is not exactly equivariant at this size; "
+            f"safe sizes nearby: {nearest or 'none found'}")

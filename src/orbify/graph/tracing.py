@@ -11,6 +11,7 @@ import torch
 from torch import fx, nn
 from torch.fx.passes.shape_prop import ShapeProp
 
+from orbify.common.modes import module_mode
 from orbify.errors import InputShapeError, TraceError
 
 
@@ -52,15 +53,11 @@ def trace(model: nn.Module, example_input: torch.Tensor | None = None,
 
 def propagate_shapes(gm: fx.GraphModule, example_input: torch.Tensor) -> None:
     """Run ``example_input`` through ``gm`` (eval, no grad) and store each node's tensor metadata."""
-    training = gm.training
-    gm.eval()
     try:
-        with torch.no_grad():
+        with module_mode(gm, training=False), torch.no_grad():
             ShapeProp(gm).propagate(example_input)
     except Exception as error:
         raise input_error(gm, tuple(example_input.shape), error) from error
-    finally:
-        gm.train(training)
 
 
 def input_error(gm: fx.GraphModule, input_shape: tuple[int, ...], error: Exception) -> InputShapeError:

@@ -1,4 +1,4 @@
-"""Baking a whole converted model into plain torch modules, so inference needs no orbify.
+"""Baking a whole converted model into plain torch modules, so inference needs no orbify (docs/design.md §14).
 
 :func:`bake_model` copies the model, turns every tied module into the plain module it stands for
 (:func:`orbify.layers.tied.bake`: parametrizations removed with the expanded weights kept, orbit
@@ -26,6 +26,21 @@ def bake_model(module: nn.Module) -> nn.Module:
     trees built from them. The copy keeps the training mode and ``requires_grad`` flags. Raises
     :class:`UnsupportedOpError` for an orbit pool outside a ``torch.fx`` graph (trace the model
     first).
+
+    Example (the baked copy computes what the converted model computes, with plain layers):
+
+    >>> import torch
+    >>> from torch import nn
+    >>> import orbify
+    >>> model = nn.Sequential(nn.Conv2d(3, 8, 3, padding=1), nn.ReLU(), nn.AdaptiveAvgPool2d(1), nn.Flatten(),
+    ...                       nn.Linear(8, 4)).eval()
+    >>> converted, plan = orbify.convert(model, "c4", example_input=torch.zeros(1, 3, 9, 9))
+    >>> baked = orbify.bake_model(converted)
+    >>> any(torch.nn.utils.parametrize.is_parametrized(m) for m in baked.modules())
+    False
+    >>> x = torch.randn(2, 3, 9, 9)
+    >>> torch.allclose(baked(x), converted(x), atol=1e-6)
+    True
     """
     baked = copy.deepcopy(module)
     graphs = [m for m in baked.modules() if isinstance(m, fx.GraphModule)]

@@ -1,4 +1,4 @@
-"""Tied modules: ordinary torch modules whose parameters are tied by the group.
+"""Tied modules: ordinary torch modules whose parameters are tied by the group (docs/design.md §4–§5).
 
 Conv, transposed conv and linear layers stay ``nn.Conv2d`` / ``nn.ConvTranspose2d`` /
 ``nn.Linear``; their weight (and bias) get a :class:`~orbify.symmetry.tying.TiedWeight` (or, for a spatial
@@ -20,8 +20,6 @@ from orbify.errors import WidthError
 from orbify.symmetry.groups import Group
 from orbify.symmetry.layouts import Layout, Orbit, Plain
 from orbify.symmetry.tying import TiedPerOrbit, tied_weight
-
-Conv = nn.Conv1d | nn.Conv2d | nn.ConvTranspose2d
 
 
 def conv_fibre(group: Group, in_layout: Layout, out_layout: Layout, groups: int, where: str = "") -> Layout:
@@ -62,7 +60,8 @@ def _tie_bias(module: nn.Module, group: Group, out_layout: Layout) -> None:
         _register(module, "bias", TiedPerOrbit(group, out_layout.orbits))
 
 
-def tie_conv(conv: Conv, group: Group, in_layout: Layout, out_layout: Layout, where: str = "") -> Conv:
+def tie_conv(conv: nn.Conv2d | nn.ConvTranspose2d, group: Group, in_layout: Layout, out_layout: Layout,
+             where: str = "") -> nn.Conv2d | nn.ConvTranspose2d:
     """Tie ``conv`` in place from ``in_layout`` to ``out_layout``; its current weight is projected.
 
     ``conv`` must already have the channel counts of the layouts. Plain → plain 1×1 convs need no

@@ -7,8 +7,6 @@ format is described in :mod:`orbify.recipes.schema` and in the README, section "
 """
 
 from orbify.recipes.catalog import find_recipe_for, list_recipes, load_recipe, read_recipe, shipped_folder
-from orbify.recipes.recipe import Recipe, merge_options
-from orbify.recipes.schema import SECTIONS
+from orbify.recipes.recipe import merge_options
 
-__all__ = ["Recipe", "SECTIONS", "find_recipe_for", "list_recipes", "load_recipe", "merge_options", "read_recipe",
-           "shipped_folder"]
+__all__ = ["find_recipe_for", "list_recipes", "load_recipe", "merge_options", "read_recipe", "shipped_folder"]

@@ -53,7 +53,7 @@ def read_recipe(path: Path) -> Recipe:
         text = path.read_text(encoding="utf-8")
     except FileNotFoundError:
         raise RecipeError(f"The recipe file {str(path)!r} does not exist",
-                          fix="check the path, or give the name of a shipped recipe (`orbify recipes` lists them)")
+                          fix="check the path, or give the name of a shipped recipe (`orbify recipes` lists them)") from None
     except (OSError, UnicodeDecodeError) as error:
         raise RecipeError(f"The recipe file {str(path)!r} cannot be read: {error}",
                           fix="give a readable UTF-8 TOML file") from error

@@ -10,8 +10,8 @@ from types import MappingProxyType
 from torch import nn
 
 from orbify.errors import OptionError
-from orbify.graph.sizes import SizeChecker
 from orbify.files.sources import TORCHVISION_PREFIX
+from orbify.graph.sizes import SizeChecker
 from orbify.recipes.schema import recipe_error
 
 
@@ -79,7 +79,7 @@ class Recipe:
         return dict(self.settings["convert"])
 
     def tune_options(self) -> dict[str, object]:
-        """Keyword arguments for :func:`orbify.tuning.loop`: epochs, lr, batch_size, view_combination, schedule and
+        """Keyword arguments for :func:`orbify.tuning.loop.tune`: epochs, lr, batch_size, view_combination, schedule and
         ``recalibrate`` (whether batch-norm statistics are re-estimated before the first epoch)."""
         return {**self.settings["tune"], "recalibrate": self.recalibrate_batches > 0}
 

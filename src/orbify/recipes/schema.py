@@ -6,7 +6,7 @@ A recipe file is TOML with five sections (see the README, "Recipes"):
 ``[convert]``      the options of :func:`orbify.convert` plus the ``input_size`` to convert at;
 ``[calibrate]``    how many of the user's images a calibrated conversion (``init = "calibrated"``) uses;
 ``[recalibrate]``  how many batches of the user's images re-estimate batch-norm statistics;
-``[tune]``         defaults for :func:`orbify.tuning.loop`.
+``[tune]``         defaults for :func:`orbify.tuning.loop.tune`.
 
 :func:`validate` checks parsed TOML against :data:`SECTIONS` and fills in the defaults; every
 problem is a :class:`~orbify.errors.RecipeError` that names the file, the key path (such as
@@ -17,18 +17,19 @@ from __future__ import annotations
 
 import difflib
 import functools
+import inspect
 import math
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 
-from orbify.conversion.converter import MATCH_DEFAULT
+from orbify.conversion.converter import convert
 from orbify.errors import GroupError, RecipeError
-from orbify.symmetry.groups import parse_group
-from orbify.graph.plan import BUDGETS, HEADS, INITS
 from orbify.files.sources import FACTORY_PATTERN, TORCHVISION_PREFIX
+from orbify.graph.plan import BUDGETS, HEADS, INITS
+from orbify.symmetry.groups import parse_group
+from orbify.tuning.options import SCHEDULES, TuneOptions
 from orbify.tuning.teacher import VIEW_COMBINATIONS
-from orbify.tuning.loop import SCHEDULES, TuneOptions
 
 REQUIRED = object()
 """Marks a key without a default."""
@@ -106,7 +107,13 @@ def _torchvision_names() -> frozenset[str] | None:
 
 _TUNE = TuneOptions()
 
-#: Calibration images read when neither the command line nor the recipe says (design.md section 7b: a few hundred).
+CONVERT_DEFAULTS: dict[str, object] = {
+    name: inspect.signature(convert).parameters[name].default
+    for name in ("group", "budget", "head", "init", "match", "stop_at")}
+"""The conversion options used where neither the command line nor a recipe sets them: the defaults of
+:func:`orbify.convert` itself, read from its signature so that they have one home."""
+
+#: Calibration images read when neither the command line nor the recipe says (docs/design.md §9: a few hundred).
 CALIBRATION_IMAGES = 256
 
 SECTIONS: dict[str, dict[str, Key]] = {
@@ -119,11 +126,12 @@ SECTIONS: dict[str, dict[str, Key]] = {
         "group": Key(str, "cN or dN, e.g. \"c4\", \"d4\"", check=_group),
         "input_size": Key(int, "a safe square input size in pixels, ≥ 8 (every strided op exact); "
                                "`orbify sizes SOURCE` lists them", check=_at_least(8)),
-        "budget": Key(str, ", ".join(BUDGETS), "channels", _choice(BUDGETS)),
-        "head": Key(str, ", ".join(HEADS), "invariant", _choice(HEADS)),
-        "init": Key(str, ", ".join(INITS), "orbit-average", _choice(INITS)),
-        "match": Key(bool, "true or false", MATCH_DEFAULT),
-        "stop_at": Key(str, "a graph node name or module path of the model, e.g. \"layer4\"", None),
+        "budget": Key(str, ", ".join(BUDGETS), CONVERT_DEFAULTS["budget"], _choice(BUDGETS)),
+        "head": Key(str, ", ".join(HEADS), CONVERT_DEFAULTS["head"], _choice(HEADS)),
+        "init": Key(str, ", ".join(INITS), CONVERT_DEFAULTS["init"], _choice(INITS)),
+        "match": Key(bool, "true or false", CONVERT_DEFAULTS["match"]),
+        "stop_at": Key(str, "a graph node name or module path of the model, e.g. \"layer4\"",
+                       CONVERT_DEFAULTS["stop_at"]),
     },
     "calibrate": {
         "images": Key(int, "an integer ≥ 1: how many calibration images init = \"calibrated\" reads (evenly spaced)",

@@ -1,1 +1,1 @@
-"""The symmetry mathematics: groups, filter turning, channel layouts and weight tying (docs/design.md §1–§4)."""
+"""The symmetry mathematics: groups, filter turning, channel layouts and weight tying (docs/design.md §2–§4, §11)."""

@@ -1,4 +1,4 @@
-"""The rotation groups cN and dN and how they act on the pixel grid.
+"""The rotation groups cN and dN and how they act on the pixel grid (docs/design.md §2).
 
 Convention (fixed project-wide and tested against ``numpy.rot90``/``numpy.flip``): an element
 ``g = (k, m)`` means *mirror if m, then rotate by k·360°/N counter-clockwise*. The mirror is a
@@ -17,8 +17,8 @@ the mirror) still act exactly, and :meth:`Group.kernel_matrices` keeps them exac
 
 from __future__ import annotations
 
-import math
 import functools
+import math
 import re
 from dataclasses import dataclass, replace
 from functools import cached_property
@@ -33,10 +33,8 @@ from orbify.symmetry.resample import METHODS, kernel_rotation_matrix
 #: which every filter has. A conv reads its input through the filter, so what has to turn
 #: correctly is the filter's response to the (smooth) input, not its finest pixel detail: angular
 #: frequencies the inner ring cannot hold are dropped from the turned copies instead of being
-#: turned wrongly. Measured on trained models (resnet18 trained on the example tiles; the example
-#: CNN), error of "every filter turned by 45°" against "input turned by −45°" on smooth fields and
-#: photographs: 0.16-0.29 and 0.08-0.17 with this band, 0.36-0.61 and 0.37-1.13 with the grid's
-#: full band, 0.41-0.83 and 0.45-0.98 bilinear; bands 1 and 3 did worse than 2.
+#: turned wrongly. The band was chosen by measurement on trained models; see benchmarks/README.md,
+#: "Finer rotations".
 FILTER_BAND = 2
 
 _NAME = re.compile(r"^\s*([cCdD])\s*(\d+)\s*(?::\s*([a-z]+)\s*)?$")
@@ -200,6 +198,16 @@ def parse_group(spec: str | Group, resampling: str | None = None) -> Group:
     The filter resampling of approximate groups is the ``resampling`` argument ("harmonic" or
     "bilinear") when given, else the one named after a colon, else the default "harmonic".
     ``parse_group(group.spec) == group`` for every group.
+
+    >>> import orbify
+    >>> d4 = orbify.parse_group("D4")
+    >>> d4.name, d4.order, d4.exact
+    ('d4', 8, True)
+    >>> c8 = orbify.parse_group("c8:bilinear")
+    >>> c8.order, c8.exact, c8.resampling
+    (8, False, 'bilinear')
+    >>> orbify.parse_group(c8.spec) == c8
+    True
     """
     if isinstance(spec, Group):
         return spec if resampling is None else replace(spec, resampling=resampling)
@@ -213,9 +221,6 @@ def parse_group(spec: str | Group, resampling: str | None = None) -> Group:
         )
     letter, number, named = match.groups()
     return Group(rotations=int(number), mirror=letter.lower() == "d", resampling=resampling or named or METHODS[0])
-
-
-EXACT_GROUPS = ("c1", "c2", "c4", "d1", "d2", "d4")
 
 
 APPROXIMATE_NOTE = ("{group} is an approximate group: its rotations by multiples of {step:g}° that are not multiples "

@@ -1,4 +1,4 @@
-"""Layouts: how a group moves the channels of a tensor (design.md section 3).
+"""Layouts: how a group moves the channels of a tensor (docs/design.md §3).
 
 Every layout is a *permutation action* on the channel axis: for each group element g,
 ``permutation(group)[g]`` is an index ``p`` with ``(g·x)[:, c] = x[:, p[c]]``. Pixels move as

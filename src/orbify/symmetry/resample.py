@@ -1,4 +1,4 @@
-"""Rotating filters and images by angles that are not multiples of 90 degrees.
+"""Rotating filters and images by angles that are not multiples of 90 degrees (docs/design.md §11.1–§11.2).
 
 The groups ``cN``/``dN`` with N not dividing 4 (c8, c16, d8, ...) act on the pixel grid only
 approximately; this module holds the numerical core they share.
@@ -38,15 +38,9 @@ Filters: ``kernel_rotation_matrix`` gives the matrix M with ``rotated.flatten() 
   G(alpha)[p, q] = sum_m c_m exp(-(r_p - r_q)^2 / 2 ell^2) ive(m, r_p r_q / ell^2) cos(m (phi_p - alpha - phi_q)),
   c_0 = 1, c_m = 2.
 
-Measured on random smooth filters (sums of anisotropic Gaussians inside the inscribed disk,
-3x3/5x5/7x7, rotated by 45 degrees, median relative L2 error against the analytically rotated
-pattern): bilinear 0.15; harmonic 0.045 with ``ell`` = 0.7 px. Narrower bumps fit worse (0.060
-at 0.6 px); wider ones gain little (0.043 at 0.8 px) but amplify more: the largest gain of
-M(45°) over all filters rises from about 1.25 to 1.4 (bilinear: 1.03). Hence 0.7 px.
-A basis of Gaussian rings at radii 0, 1, 2, ... with a per-ring cut-off and a plain ``pinv``
-fit did worse: it leaves part of the pixel space outside the basis, which then has to be kept
-unrotated (0.08 or worse), dropped (M(0) is no longer the identity) or rotated bilinearly (0.07
-at best), and it amplifies some filters by up to 1.6.
+The width ``ell`` = 0.7 px was chosen by measurement: narrower bumps fit smooth filters worse,
+wider ones gain little and amplify some filters more (benchmarks/README.md, "Finer rotations":
+accuracy against gain of the resampling matrix).
 """
 
 from __future__ import annotations
@@ -70,8 +64,7 @@ HARMONIC_WIDTH = 0.7
 
 #: With a lowered angular cut-off the band-limited bumps no longer span every pixel filter and some
 #: nearly coincide; the fit drops the Gram directions below this fraction of the largest eigenvalue.
-#: Measured, cut-off 2, largest gain of M(45°) for 3×3 / 5×5 / 7×7 filters: 1.00 / 1.28 / 2.80
-#: (1e-4: 1.00 / 3.7 / 11.7, fitting noise; 5e-2: 1.00 / 1.28 / 1.08, but 3×3 filters fit worse).
+#: Chosen by the largest gain of M(45°) it allows (benchmarks/README.md, "Finer rotations").
 BAND_FIT_RTOL = 1e-2
 
 _QUARTER = math.pi / 2

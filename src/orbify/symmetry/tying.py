@@ -1,4 +1,4 @@
-"""Tying a weight between two layouts: expand, project and the weight residual (design.md section 4).
+"""Tying a weight between two layouts: expand, project and the weight residual (docs/design.md §4).
 
 A linear map with weight W (axes: out, in-fibre, kernel...) commutes with the group exactly when
 ``W[g·o, g·i, g·y] = W[o, i, y]`` for every g. The *in-fibre* of an output channel is the block
@@ -15,7 +15,7 @@ Projection Π is the least-squares nearest tied weight (the orbit average); it i
 parametrization's ``right_inverse``, so assigning a pretrained weight stores its orbit average.
 Index tensors are kept per in-fibre (|G|·fibre entries), never one per weight element.
 
-**Approximate groups** (c8, c16, d8, ...) move a spatial filter by a resampling matrix
+**Approximate groups** (c8, c16, d8, ...; docs/design.md §11.3) move a spatial filter by a resampling matrix
 ``M_g`` (:meth:`Group.kernel_matrices`), so g acts on an in-fibre linearly,
 ``A_g = P_g ⊗ M_g`` (the exact channel permutation P_g times the filter resampling), and
 :class:`ResampledWeight` replaces the gather by that linear map:
@@ -46,6 +46,7 @@ keep the exact gather of :class:`TiedWeight`. :func:`tied_weight` picks the righ
 from __future__ import annotations
 
 import functools
+import math
 
 import torch
 from torch import nn
@@ -62,12 +63,12 @@ def fibre_index(group: Group, fibre: Layout, kernel: tuple[int, ...]) -> torch.T
     like pixels (exact groups only: approximate groups resample such kernels, see :class:`ResampledWeight`).
     """
     channels = fibre.size(group)
-    index = torch.arange(channels * _prod(kernel)).view(channels, *kernel)
+    index = torch.arange(channels * math.prod(kernel)).view(channels, *kernel)
     perm = fibre.permutation(group)
     rows = []
     for g in range(group.order):
         moved = index[perm[g]]
-        if len(kernel) == 2 and _prod(kernel) > 1:
+        if len(kernel) == 2 and math.prod(kernel) > 1:
             moved = group.act_grid(g, moved)
         elif len(kernel) not in (0, 2):
             raise ValueError(f"only 2-D kernels are tied, got kernel {kernel}")
@@ -75,22 +76,15 @@ def fibre_index(group: Group, fibre: Layout, kernel: tuple[int, ...]) -> torch.T
     return torch.stack(rows)
 
 
-def _prod(shape: tuple[int, ...]) -> int:
-    out = 1
-    for s in shape:
-        out *= s
-    return out
-
-
 #: Largest mean squared change ‖M_g u - u‖² (u of unit norm) a kernel of the invariant basis may
-#: have: an RMS change of about 0.22, the error of a resampled rotation on a typical smooth filter
-#: (harmonic 0.05, bilinear 0.15; see orbify.symmetry.resample).
+#: have: an RMS change of about 0.22, the size of a resampled rotation's error on a smooth filter
+#: (benchmarks/README.md, "Finer rotations").
 INVARIANT_SPREAD = 0.05
 
 
 def _resamples(group: Group, kernel: tuple[int, ...]) -> bool:
     """True when tying this kernel under this group needs filter resampling."""
-    return not group.exact and _prod(kernel) > 1
+    return not group.exact and math.prod(kernel) > 1
 
 
 class WeightTying(nn.Module):
@@ -144,8 +138,9 @@ class TiedWeight(WeightTying):
         if _resamples(group, tuple(kernel)):
             raise GroupError(f"Tying by index needs an exact group for a {kernel} kernel, but {group.name} "
                              f"rotates by {360 / group.rotations:g}°, which moves filters by resampling",
-                             where="orbify.symmetry.tying.TiedWeight", fix="use orbify.symmetry.tying.tied_weight(...), which "
-                             "picks ResampledWeight for approximate groups")
+                             where="orbify.symmetry.tying.TiedWeight",
+                             fix="use orbify.symmetry.tying.tied_weight(...), which picks ResampledWeight for "
+                                 "approximate groups")
         super().__init__(group, out, fibre, kernel, transposed)
         index = fibre_index(group, fibre, tuple(kernel))
         if self.out_is_orbit:
@@ -185,7 +180,7 @@ class TiedWeight(WeightTying):
 
     @property
     def is_trivial(self) -> bool:
-        return not self.out_is_orbit and self.fibre_orbits == _prod(self.fibre_shape)
+        return not self.out_is_orbit and self.fibre_orbits == math.prod(self.fibre_shape)
 
 
 class ResampledWeight(WeightTying):
@@ -209,7 +204,7 @@ class ResampledWeight(WeightTying):
         self.group_name = group.name
         self.resampling = group.resampling
         self.channels = fibre.size(group)
-        self.area = _prod(kernel)
+        self.area = math.prod(kernel)
         matrices, gram_inverse, invariant_basis = _resampling_operators(group, kernel[0])
         self.register_buffer("matrices", matrices, persistent=False)
         if self.out_is_orbit:
@@ -318,14 +313,20 @@ def project(group: Group, weight: torch.Tensor, out: Layout, fibre: Layout,
     return tying(tying.right_inverse(weight))
 
 
+def relative_residual(weight: torch.Tensor, tied: torch.Tensor) -> float:
+    """‖W − T‖ / ‖W‖ of a weight W and its tied counterpart T (same shape and orientation); 0 when W is zero.
+
+    With T = Π(W) this is the weight residual that the conversion records for every layer.
+    """
+    norm = weight.norm()
+    return float((weight - tied).norm() / norm) if norm > 0 else 0.0
+
+
 def weight_residual(group: Group, weight: torch.Tensor, out: Layout, fibre: Layout,
                     transposed: bool = False) -> float:
     """‖W − Π(W)‖ / ‖W‖ (0 for a zero weight)."""
-    norm = weight.norm()
-    if norm == 0:
-        return 0.0
-    return float((weight - project(group, weight, out, fibre, transposed)).norm() / norm)
+    return relative_residual(weight, project(group, weight, out, fibre, transposed))
 
 
-__all__ = ["ResampledWeight", "TiedWeight", "TiedPerOrbit", "WeightTying", "fibre_index", "project", "tied_weight",
-           "weight_residual", "Orbit", "Plain"]
+__all__ = ["ResampledWeight", "TiedWeight", "TiedPerOrbit", "WeightTying", "fibre_index", "project",
+           "relative_residual", "tied_weight", "weight_residual", "Orbit", "Plain"]

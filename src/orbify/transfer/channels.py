@@ -1,4 +1,4 @@
-"""Which original channels each converted channel stands for (used to carry weights over).
+"""Which original channels each converted channel stands for (used to carry weights over; docs/design.md §8).
 
 A :class:`ChannelMap` belongs to a value in the converted graph. ``source[p]`` is the original
 channel that new channel p copies (−1: none); ``inflow`` (original × new, sparse) is how a layer
@@ -6,14 +6,16 @@ that reads the value turns its original input weights into new ones: ``W_new = W
 along the input-channel axis. Replicated channels split their weight, pooled orbits sum it, so a
 layer fed with copies of its original inputs computes what it computed before. An *embedded*
 map (:meth:`ChannelMap.embedded`) feeds slot 0 of every orbit only: the lossless ``embed``
-initialisation reads the original features from slot 0 (design.md section 7).
+initialisation reads the original features from slot 0 (docs/design.md §7).
 """
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
 
 import torch
+from torch import fx
 
 
 @dataclass
@@ -80,6 +82,27 @@ class ChannelMap:
     def dense_inflow(self) -> torch.Tensor:
         """The inflow as a dense (original, new) matrix (for inspection and tests)."""
         return self.inflow.to_dense()
+
+
+def carried_map(node: fx.Node, sources: list[ChannelMap | None], maps: Mapping[fx.Node, ChannelMap | None], *,
+                pool_order: int | None = None, positions: int | None = None) -> ChannelMap | None:
+    """The channel map of a value that no conv or linear layer writes, from the maps of its inputs.
+
+    ``sources`` are the maps of the node's inputs that carry channels, in argument order, and
+    ``maps`` holds the map of every earlier node. A ``torch.cat`` whose parts all have maps joins
+    them (:meth:`ChannelMap.concat`); an orbit pool of ``pool_order`` slots pools the first source;
+    a node that flattens a spatial map of ``positions`` positions per channel spreads it; any other
+    op keeps its first source's map. None when no input carries channels.
+    """
+    if not sources:
+        return None
+    if node.target is torch.cat and all(maps.get(part) is not None for part in node.args[0]):
+        return ChannelMap.concat([maps[part] for part in node.args[0]])
+    if pool_order is not None:
+        return sources[0].pooled(pool_order)
+    if positions is not None:
+        return sources[0].flattened(positions)
+    return sources[0]
 
 
 def _sparse(rows: torch.Tensor, cols: torch.Tensor, values: torch.Tensor, original: int, new: int) -> torch.Tensor:

@@ -1,6 +1,6 @@
-"""Carrying pretrained weights into a converted model (design.md sections 4 and 7).
+"""Which original channels share an orbit in a converted model (docs/design.md §8).
 
-Three pieces, used by :mod:`orbify.convert`:
+Two pieces, used by :mod:`orbify.conversion.converter` and :mod:`orbify.calibration`:
 
 * **Channel matching** (:func:`match_channels`). Which original channels share an orbit, and in
   which slot, is free. The weight residual ‖W − Π(W)‖ of a layer is the scatter of its output
@@ -13,9 +13,8 @@ Three pieces, used by :mod:`orbify.convert`:
   add, a squeeze-excitation product) must hold the same original channel in every position, so
   the layers that write them share one assignment; grouped convs and group norms that read a
   value keep its channels inside their groups.
-* **Loading** (:func:`load_weight`, :func:`tied_residual`): assign a carried-over weight (the
-  parametrization's ``right_inverse`` stores the orbit average Π), or, for the lossless ``embed``
-  initialisation, set the base directly to the slot-0 rows.
+
+Loading the weights is :mod:`orbify.transfer.loading`; which layers take part, :mod:`orbify.transfer.kinds`.
 """
 
 from __future__ import annotations
@@ -27,28 +26,15 @@ import numpy as np
 import torch
 from scipy.optimize import linear_sum_assignment
 from torch import fx, nn
-from torch.nn.utils import parametrize
 
-from orbify.graph.tracing import shape
 from orbify.graph.rules import broadcasts_channel, elementwise, rule_for
-
-LAYER_TYPES = (nn.Conv2d, nn.ConvTranspose2d, nn.Linear)
+from orbify.graph.tracing import shape
+from orbify.transfer.kinds import chooses_channels
 
 #: Alternations of assignment and projection at most (matching stops earlier when it stops improving).
 MATCH_ROUNDS = 6
 #: Multiply-adds of one assignment round above which a layer keeps the identity assignment (a few seconds).
 MATCH_WORK_LIMIT = 2e10
-
-
-def is_depthwise(module: nn.Module) -> bool:
-    """A conv with one channel per group on both sides: its output channels follow its input channels."""
-    return isinstance(module, (nn.Conv2d, nn.ConvTranspose2d)) and \
-        module.groups > 1 and module.groups == module.in_channels == module.out_channels
-
-
-def chooses_channels(module: nn.Module | None) -> bool:
-    """True for layers whose output channels the conversion assigns (conv and linear, not depthwise)."""
-    return isinstance(module, LAYER_TYPES) and not is_depthwise(module)
 
 
 # -- matching -----------------------------------------------------------------------------------
@@ -110,7 +96,8 @@ def match_channels(terms: list[MatchTerm], usage: torch.Tensor, blocks: int = 1)
     forbidden = _block_mask(usage, channels, blocks) if blocks > 1 else None
     best = identity = _Projection(terms, flat, usage, weights)
     rounds = 0
-    for rounds in range(1, MATCH_ROUNDS + 1):
+    while rounds < MATCH_ROUNDS:
+        rounds += 1
         score = sum(k * (w @ c.T) for w, c, k in zip(flat, best.tied, weights))   # (channels, positions)
         score = score[usage].double().numpy()
         if forbidden is not None:
@@ -267,41 +254,6 @@ class ChannelClasses:
             self._of[node] = inputs[0] if inputs else self._new(frozen=True)
             if isinstance(module, nn.GroupNorm) and inputs:
                 self._constrain(inputs[0], module.num_groups)
-
-
-# -- loading ----------------------------------------------------------------------------------
-
-def _stored(weight: torch.Tensor, transposed: bool) -> torch.Tensor:
-    return weight.transpose(0, 1) if transposed else weight
-
-
-@torch.no_grad()
-def load_weight(module: nn.Module, weight: torch.Tensor, transposed: bool = False, slot_zero: bool = False) -> None:
-    """Store an out-first ``weight`` in ``module`` (a tied conv or linear).
-
-    By default ``weight`` is full-size and the parametrization's ``right_inverse`` stores its orbit
-    average Π(weight). With ``slot_zero`` (orbit outputs only) ``weight`` holds the rows of slot 0
-    of every output orbit and becomes the base as it is: the lossless ``embed`` initialisation,
-    where slot g then holds the same filters moved by g.
-    """
-    if not parametrize.is_parametrized(module, "weight"):
-        module.weight.copy_(_stored(weight, transposed))
-    elif slot_zero:
-        base = module.parametrizations.weight.original
-        base.copy_(weight.reshape(base.shape))
-    else:
-        setattr(module, "weight", _stored(weight, transposed))
-
-
-@torch.no_grad()
-def tied_residual(module: nn.Module, weight: torch.Tensor, transposed: bool = False) -> float:
-    """‖W − Π(W)‖ / ‖W‖ of an out-first full weight under ``module``'s tying (0 when untied or zero)."""
-    norm = weight.norm()
-    if norm == 0 or not parametrize.is_parametrized(module, "weight"):
-        return 0.0
-    tying = module.parametrizations.weight[0]
-    stored = _stored(weight, transposed)
-    return float((stored - tying(tying.right_inverse(stored))).norm() / norm)
 
 
 def residual_totals(plan) -> dict[str, float | None]:

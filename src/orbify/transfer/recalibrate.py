@@ -1,4 +1,7 @@
-"""Re-estimating batch-norm statistics of a converted model on a few batches of unlabeled images."""
+"""Re-estimating batch-norm statistics of a converted model on a few batches of unlabeled images.
+
+The procedure is described in docs/design.md §10.
+"""
 
 from __future__ import annotations
 
@@ -7,6 +10,7 @@ from collections.abc import Iterable
 import torch
 from torch import nn
 
+from orbify.common.modes import module_mode
 from orbify.errors import OptionError
 
 
@@ -25,29 +29,27 @@ def recalibrate_batch_norm(model: nn.Module, batches: Iterable[torch.Tensor]) ->
     norms = [m for m in model.modules() if isinstance(m, nn.modules.batchnorm._BatchNorm) and m.track_running_stats]
     if not norms:
         return 0
-    training = model.training
     momenta = [m.momentum for m in norms]
     saved = [(m.running_mean.clone(), m.running_var.clone(), m.num_batches_tracked.clone()) for m in norms]
-    model.eval()
-    for m in norms:
-        m.reset_running_stats()
-        m.momentum = None
-        m.train()
     seen, done = 0, False
-    try:
-        for batch in batches:
-            model(batch)
-            seen += batch.shape[0]
-        done = seen > 0
-    finally:
-        for m, momentum in zip(norms, momenta):
-            m.momentum = momentum
-        model.train(training)
-        if not done:   # no image, or an error on the way: the statistics stay as they were
-            for m, (mean, var, count) in zip(norms, saved):
-                m.running_mean.copy_(mean)
-                m.running_var.copy_(var)
-                m.num_batches_tracked.copy_(count)
+    with module_mode(model, training=False):
+        for m in norms:
+            m.reset_running_stats()
+            m.momentum = None
+            m.train()
+        try:
+            for batch in batches:
+                model(batch)
+                seen += batch.shape[0]
+            done = seen > 0
+        finally:
+            for m, momentum in zip(norms, momenta):
+                m.momentum = momentum
+            if not done:   # no image, or an error on the way: the statistics stay as they were
+                for m, (mean, var, count) in zip(norms, saved):
+                    m.running_mean.copy_(mean)
+                    m.running_var.copy_(var)
+                    m.num_batches_tracked.copy_(count)
     if seen == 0:
         raise OptionError("Batch-norm recalibration was given no images", where="calibration batches",
                           fix="give at least one batch of images shaped like the model's input")

@@ -1,62 +1,54 @@
-"""Rich progress bars for tuning: epochs, steps, loss and held-out accuracy (rank 0 only)."""
+"""Progress of a tuning run: bars for epochs and steps, one printed line per epoch (rank 0 only)."""
 
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
-
 from rich.console import Console
-from rich.progress import BarColumn, MofNCompleteColumn, Progress, TextColumn, TimeElapsedColumn, TimeRemainingColumn
 
-if TYPE_CHECKING:
-    from orbify.tuning.loop import EpochRecord, Evaluation
+from orbify.common.progress import ProgressBars
+from orbify.tuning.records import EpochRecord, Evaluation
 
 
 class Display:
     """Two bars (epochs, steps of the current epoch) and one printed line per epoch; silent when disabled."""
 
     def __init__(self, enabled: bool, epochs: int, steps: int, console: Console | None = None):
-        self.enabled = enabled
         self.epochs = epochs
         self.steps = steps
-        self.progress = Progress(TextColumn("{task.description}"), BarColumn(), MofNCompleteColumn(),
-                                 TimeElapsedColumn(), TimeRemainingColumn(), TextColumn("{task.fields[status]}"),
-                                 console=console, disable=not enabled, transient=True)
+        self.bars = ProgressBars(enabled, console=console, time_remaining=True, transient=True)
 
     def __enter__(self) -> "Display":
-        self.progress.__enter__()
-        self.epoch_task = self.progress.add_task("epochs", total=self.epochs, status="")
-        self.step_task = self.progress.add_task("steps", total=self.steps, status="")
+        self.bars.__enter__()
+        self.epoch_bar = self.bars.add("epochs", self.epochs)
+        self.step_bar = self.bars.add("steps", self.steps)
         return self
 
     def __exit__(self, *exc) -> None:
-        self.progress.__exit__(*exc)
+        self.bars.__exit__(*exc)
 
-    def teacher(self, accuracy: dict[str, float], chosen: str, before: "Evaluation", done: int) -> None:
+    def teacher(self, accuracy: dict[str, float], chosen: str, before: Evaluation, done: int) -> None:
         """Say how good each teacher is (with labels), where the student starts, and where a resumed run goes on."""
         if accuracy:
             scores = ", ".join(f"{'[bold]' + how + '[/]' if how == chosen else how} {value:.3f}"
                                for how, value in accuracy.items())
-            self._print(f"teacher accuracy on held-out images by view combination: {scores}")
-        self._print(f"before tuning: {_evaluation(before)}")
+            self.bars.print(f"teacher accuracy on held-out images by view combination: {scores}")
+        self.bars.print(f"before tuning: {_evaluation(before)}")
         if done:
-            self._print(f"resuming after epoch {done}")
-            self.progress.update(self.epoch_task, completed=done)
+            self.bars.print(f"resuming after epoch {done}")
+            self.bars.set_completed(self.epoch_bar, done)
 
     def step(self, loss: float) -> None:
-        self.progress.update(self.step_task, advance=1, status=f"loss {loss:.4f}")
+        """One training step done, with its loss."""
+        self.bars.advance(self.step_bar, f"loss {loss:.4f}")
 
-    def epoch_done(self, record: "EpochRecord") -> None:
+    def epoch_done(self, record: EpochRecord) -> None:
+        """An epoch done: advance the epoch bar, restart the step bar, print the epoch's line."""
         line = f"epoch {record.epoch}/{self.epochs}: train loss {record.train_loss:.4f}, {_evaluation(record.held_out)}"
-        self.progress.update(self.epoch_task, advance=1, status=_evaluation(record.held_out, short=True))
-        self.progress.reset(self.step_task, total=self.steps, status="")
-        self._print(line)
-
-    def _print(self, text: str) -> None:
-        if self.enabled:
-            self.progress.console.print(text, highlight=False)
+        self.bars.advance(self.epoch_bar, _evaluation(record.held_out, short=True))
+        self.bars.restart(self.step_bar, self.steps)
+        self.bars.print(line)
 
 
-def _evaluation(evaluation: "Evaluation", short: bool = False) -> str:
+def _evaluation(evaluation: Evaluation, short: bool = False) -> str:
     if short:
         return f"held-out {evaluation.measure} {evaluation.upright:.3f} / {evaluation.transformed:.3f}"
     return (f"held-out loss {evaluation.loss:.4f}, {evaluation.measure} upright {evaluation.upright:.3f}, "

@@ -1,7 +1,7 @@
 """The teacher for tuning: the original model made invariant by combining its outputs over the group's views.
 
 For an input x the original classifier f sees the |G| views g·x. :func:`combine_views` turns
-the |G| logit vectors into one class distribution (design.md section 9):
+the |G| logit vectors into one class distribution (docs/design.md §13):
 
 ``probability``
     the probability average 1/|G| Σ_g softmax(f(g·x)): right when the original was trained with
@@ -26,10 +26,11 @@ from dataclasses import dataclass
 import torch
 from torch import nn
 
-from orbify.tuning.distributed import World
+from orbify.common.modes import module_mode
+from orbify.common.options import check_choice
 from orbify.errors import InputShapeError
 from orbify.symmetry.groups import Group, parse_group
-from orbify.common.options import check_choice
+from orbify.tuning.distributed import World
 
 VIEW_COMBINATIONS = ("probability", "logit", "most-confident")
 
@@ -96,11 +97,9 @@ def teacher_outputs(model: nn.Module, group: Group, images: torch.Tensor, views:
     Every process returns the same result on the CPU.
     """
     check_choice("view combination", views, VIEW_COMBINATIONS)
-    training = model.training
-    model.eval()
     chosen: list[torch.Tensor] = []
     tops: dict[str, list[torch.Tensor]] = {how: [] for how in VIEW_COMBINATIONS}
-    try:
+    with module_mode(model, training=False):
         for index in world.my_batches(len(images), batch_size):
             logits = view_logits(model, group, images[index].to(world.device)).float()
             for how in VIEW_COMBINATIONS:
@@ -108,8 +107,6 @@ def teacher_outputs(model: nn.Module, group: Group, images: torch.Tensor, views:
                 tops[how].append(combined.argmax(-1).cpu())
                 if how == views:
                     chosen.append(combined.cpu())
-    finally:
-        model.train(training)
     count = len(images)
     rows = torch.cat(chosen) if chosen else torch.empty(0, 0)
     classes = int(world.from_main(rows.shape[1] if world.is_main else None))

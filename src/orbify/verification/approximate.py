@@ -1,4 +1,4 @@
-"""Equivariance of approximate groups (c8, c16, d8, ...), measured where it means something.
+"""Equivariance of approximate groups (c8, c16, d8, ...), measured where it means something (docs/design.md §11.4).
 
 A group whose rotations are not multiples of 90° moves filters by resampling and images by
 interpolation, so a tied model is equivariant to it only *approximately*: exactly to the quarter
@@ -16,10 +16,8 @@ corners, so the measurement here
 Interpolation blurs, so white-noise inputs rotated by 45° are not the same images any more. Use
 smooth inputs, best a :class:`SmoothPattern`, which is sampled at every angle instead of
 interpolated: then the input rotation adds no error at all, and the output error (invariance of
-logits, say) is the model's own. Measured on the bundled example CNN converted to c8 (harmonic,
-orbit average, no recalibration), 45° invariance error of the logits on 65-pixel inputs: 0.043
-with the inputs turned by bilinear interpolation, 0.008 with the pattern sampled turned — the
-interpolation was most of it.
+logits, say) is the model's own. Turning the inputs by interpolation can account for most of the
+measured error; see benchmarks/README.md, "Finer rotations".
 """
 
 from __future__ import annotations
@@ -31,10 +29,10 @@ from dataclasses import dataclass
 import torch
 from torch import nn
 
+from orbify.common.options import check_choice
 from orbify.errors import InputShapeError
 from orbify.symmetry.groups import Group
 from orbify.symmetry.layouts import Flat, Layout, Plain, act
-from orbify.common.options import check_choice
 from orbify.symmetry.resample import central_disk_mask
 
 SCALES = ("value", "spread")
@@ -222,5 +220,4 @@ def _disk_error(value: torch.Tensor, expected: torch.Tensor, centred: bool) -> f
     return diff / norm
 
 
-__all__ = ["APPROXIMATE_NOTE", "ElementError", "SmoothPattern", "approximate_errors", "approximate_note", "disk_window",
-           "worst_errors"]
+__all__ = ["ElementError", "SmoothPattern", "approximate_errors", "disk_window", "worst_errors"]

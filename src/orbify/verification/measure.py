@@ -3,11 +3,15 @@
 from __future__ import annotations
 
 import io
+from collections.abc import Iterator
+from contextlib import contextmanager
 
 import torch
 from torch import nn
 from torch.nn.utils import parametrize
 from torch.utils.flop_counter import FlopCounterMode
+
+from orbify.common.modes import module_mode
 
 
 def count_params(module: nn.Module) -> int:
@@ -30,16 +34,23 @@ def count_macs(module: nn.Module, example_input: torch.Tensor | tuple[torch.Tens
     as after baking. The module's training mode is restored afterwards.
     """
     inputs = example_input if isinstance(example_input, tuple) else (example_input,)
-    was_training = module.training
-    module.eval()
-    try:
-        with torch.no_grad(), parametrize.cached():
-            expand_parametrized_tensors(module)
-            with FlopCounterMode(display=False) as counter:
-                module(*inputs)
-    finally:
-        module.train(was_training)
+    with inference_flops(module) as counter:
+        module(*inputs)
     return counter.get_total_flops() // 2
+
+
+@contextmanager
+def inference_flops(module: nn.Module) -> Iterator[FlopCounterMode]:
+    """Count the FLOPs of what runs in the block as inference of ``module`` after baking.
+
+    Inside the block ``module`` is in eval mode (its mode is restored afterwards), gradients are
+    off, and every parametrized tensor has been computed once into the ``parametrize.cached()``
+    cache, so tied weights are expanded before counting starts and not counted.
+    """
+    with module_mode(module, training=False), torch.no_grad(), parametrize.cached():
+        expand_parametrized_tensors(module)
+        with FlopCounterMode(display=False) as counter:
+            yield counter
 
 
 def expand_parametrized_tensors(module: nn.Module) -> None:

@@ -15,9 +15,9 @@ from rich.console import Group as RenderGroup
 from rich.table import Table
 from rich.text import Text
 
-from orbify.verification.check import CheckReport
-from orbify.errors import OptionError
 from orbify.common.safe_io import atomic_write
+from orbify.errors import OptionError
+from orbify.verification.check import CheckReport
 from orbify.verification.summary import LayerRow, ModelSummary, SummaryDiff
 
 
@@ -301,7 +301,7 @@ def plot_check(report: CheckReport, directory: str | Path, *, force: bool = Fals
         buffer = io.BytesIO()
         figure.savefig(buffer, format="png", dpi=120, bbox_inches="tight")
         plt.close(figure)
-        written.append(atomic_write(folder / name, lambda stream: stream.write(buffer.getvalue()), force=force))
+        written.append(atomic_write(folder / name, lambda stream, png=buffer.getvalue(): stream.write(png), force=force))
     return written
 
 

@@ -16,12 +16,11 @@ from dataclasses import asdict, dataclass, field
 import torch
 from torch import fx, nn
 from torch.nn.utils import parametrize
-from torch.utils.flop_counter import FlopCounterMode
 
 from orbify.errors import OrbifyError
-from orbify.graph.tracing import trace
-from orbify.verification.measure import expand_parametrized_tensors, count_params
 from orbify.graph.plan import ConversionPlan
+from orbify.graph.tracing import trace
+from orbify.verification.measure import count_params, inference_flops
 
 LAYER_TYPES = (nn.Conv1d, nn.Conv2d, nn.Conv3d, nn.ConvTranspose1d, nn.ConvTranspose2d, nn.ConvTranspose3d,
                nn.Linear, nn.modules.batchnorm._BatchNorm, nn.GroupNorm, nn.LayerNorm)
@@ -132,17 +131,12 @@ def summarize(model: nn.Module, example_input: torch.Tensor, plan: ConversionPla
         return hook
 
     handles = [module.register_forward_hook(record(path)) for path, module in layers]
-    was_training = model.training
-    model.eval()
     try:
-        with torch.no_grad(), parametrize.cached():
-            expand_parametrized_tensors(model)
-            with FlopCounterMode(display=False) as counter:
-                model(example_input)
+        with inference_flops(model) as counter:
+            model(example_input)
     finally:
         for handle in handles:
             handle.remove()
-        model.train(was_training)
     flops = _flops_by_path(counter.get_flop_counts())
     plan_layers = {layer.target: layer for layer in plan.layers} if plan else {}
     modules = dict(layers)
@@ -200,7 +194,7 @@ def _row(path: str, module: nn.Module, name: str, shapes: tuple, macs: int, laye
     stride = getattr(module, "stride", None)
     return LayerRow(
         name=name, target=path, op=_op_name(module),
-        layout_in=layer.layout_in if layer else "-", layout_out=layer.layout_out if layer else "-",
+        layout_in=str(layer.layout_in) if layer else "-", layout_out=str(layer.layout_out) if layer else "-",
         channels=f"{input_shape[axis]}→{output_shape[axis]}",
         kernel="×".join(map(str, kernel)) if kernel else "-", stride="×".join(map(str, stride)) if stride else "-",
         params=count_params(module), macs=macs, output_shape="×".join(map(str, output_shape[1:])),

@@ -1,0 +1,63 @@
+"""What a tuning run reports: held-out evaluations, one record per epoch, and the run's result."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+from orbify.tuning.options import TuneOptions
+
+
+@dataclass
+class Evaluation:
+    """The student on the held-out images.
+
+    ``loss``: KL(teacher ‖ student) in nats per image. ``upright``: accuracy on the images as given;
+    ``transformed``: the mean accuracy over every other group element's copies. Both count
+    agreement with the teacher's top class when no labels were given (``measure`` says which).
+    """
+
+    loss: float
+    upright: float
+    transformed: float
+    measure: str
+
+
+@dataclass
+class EpochRecord:
+    """One epoch: mean training loss, learning rate at its end, held-out evaluation, wall time."""
+
+    epoch: int
+    train_loss: float
+    learning_rate: float
+    held_out: Evaluation
+    seconds: float
+
+
+@dataclass
+class TuneResult:
+    """What :func:`~orbify.tuning.loop.tune` did. The student itself is trained in place.
+
+    ``before`` evaluates the student after batch-norm recalibration, before the first step.
+    ``teacher_accuracy`` is the held-out accuracy of the teacher under every view combination
+    (empty without labels), to judge the choice. ``teacher_hash`` fingerprints the cached teacher
+    outputs and the split; checkpoints carry it. ``rank`` is this process's rank (rank 0 writes
+    files). ``resumed_after`` is the epoch a resumed run
+    started after (None for a fresh run).
+    """
+
+    options: TuneOptions
+    before: Evaluation
+    history: list[EpochRecord]
+    teacher_accuracy: dict[str, float]
+    teacher_hash: str
+    processes: int
+    train_images: int
+    held_out_images: int
+    rank: int = 0
+    resumed_after: int | None = None
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def final(self) -> Evaluation:
+        """The held-out evaluation after the last epoch."""
+        return self.history[-1].held_out if self.history else self.before
