@@ -222,7 +222,7 @@ def _set(key, value):
     (_set("format", "some-other-format"), "not 'orbify-converted-model'"),
     (_set("format_version", "2.0"), "format version 2.0"),
     (_set("format_version", "one"), "not 'major.minor'"),
-    (_set("source", "orbify_missing_package.models:build"), "cannot be rebuilt here"),
+    (_set("source", "not a reference"), "cannot be rebuilt here"),
     (_set("source", "torchvision:resnet18"), "do not fit the rebuilt model"),
 ])
 def test_bad_descriptions_give_clear_errors(example_file, tmp_path, edit, message):

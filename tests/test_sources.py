@@ -280,7 +280,7 @@ def test_registered_file_loader_claims_its_files(tmp_path, model_module):
     path.write_bytes(b"ORBTEST")
     seen: list[Path] = []
 
-    def load(claimed: Path) -> LoadedSource:
+    def load(claimed: Path, trust_source: bool) -> LoadedSource:
         seen.append(claimed)
         return LoadedSource(load_source(f"{model_module}:build").module, f"{model_module}:build")
 

@@ -245,7 +245,7 @@ def test_cli_tunes_a_source_converted_on_the_fly_then_the_saved_file(tmp_path):
                                  *common, "-o", str(first)])
     assert result.exit_code == 0, result.output
     assert "held-out loss" in result.output and first.is_file() and (tmp_path / "tuned.orb.checkpoint").is_file()
-    tuned = load(first)
+    tuned = load(first, original="test_tune:tiny_original")
     assert tuned.metadata["source"] == "test_tune:tiny_original" and tuned.plan.group == "c4"
     assert max_invariance_error(tuned.module, parse_group("c4"), tiny_data(8)[0]) < 1e-5
 
@@ -254,9 +254,12 @@ def test_cli_tunes_a_source_converted_on_the_fly_then_the_saved_file(tmp_path):
     assert again.exit_code == 2 and "already exists" in again.output and "Traceback" not in again.output
 
     second = tmp_path / "tuned-again.orb"
-    unweighted = runner.invoke(app, ["tune", str(first), *common, "-o", str(second)])
+    refused = runner.invoke(app, ["tune", str(first), "--weights", str(weights), *common, "-o", str(second)])
+    assert refused.exit_code == 2 and "--trust-source" in refused.output and not second.exists()
+    unweighted = runner.invoke(app, ["tune", str(first), "--trust-source", *common, "-o", str(second)])
     assert unweighted.exit_code == 2 and "--weights" in unweighted.output
-    result = runner.invoke(app, ["tune", str(first), "--weights", str(weights), "--views", "most-confident",
+    result = runner.invoke(app, ["tune", str(first), "--trust-source", "--weights", str(weights), "--views",
+                                 "most-confident",
                                  "--no-labels", *common, "-o", str(second)])
     assert result.exit_code == 0, result.output
     assert "agreement" in result.output and second.is_file()

@@ -14,6 +14,8 @@ Folder layouts (sorted by name, so the order is reproducible):
 An ``.npz`` file holds ``images`` of shape (N, H, W), (N, H, W, C) or (N, C, H, W) with C in
 {1, 3, 4} (when both axes could hold channels, the last one does unless the second is 3), optionally ``labels`` (N integers) and ``classes`` (their names). It is read with
 ``allow_pickle=False``. Every unreadable input raises :class:`~orbify.errors.DataError` naming it.
+An image file declaring more than :data:`LARGEST_IMAGE_PIXELS` pixels is refused from its header,
+before any pixel is decoded (an untrusted file cannot make orbify allocate gigabytes).
 """
 
 from __future__ import annotations
@@ -31,6 +33,9 @@ from orbify.errors import DataError
 
 IMAGE_SUFFIXES = (".png", ".jpg", ".jpeg", ".bmp", ".gif", ".tif", ".tiff", ".webp", ".ppm", ".pgm")
 _CHANNEL_COUNTS = (1, 3, 4)
+LARGEST_IMAGE_PIXELS = 8192 * 8192
+"""The most pixels an image file may declare: 64 times a 1024×1024 tile, below Pillow's own
+decompression-bomb limit (about 89 million pixels), so a larger file is refused from its header."""
 # ITU-R BT.601 luma weights, the ones Pillow's "L" conversion uses (common practice).
 _LUMA = (0.299, 0.587, 0.114)
 
@@ -136,13 +141,29 @@ def _decode(file: Path, channels: int) -> torch.Tensor:
 
     try:
         with Image.open(file) as image:
+            _require_tile_size(file, image.width, image.height)
             image = image.convert("L" if channels == 1 else "RGB")
             array = np.asarray(image, dtype=np.uint8)
+    except Image.DecompressionBombError as error:   # declared far beyond the limit: Pillow refuses at open
+        raise _too_large(file, f"more than {LARGEST_IMAGE_PIXELS:,} pixels ({error})") from error
     except (UnidentifiedImageError, OSError, ValueError) as error:
         raise DataError(f"The image file {str(file)!r} cannot be read ({type(error).__name__}: {error})",
                         where=str(file), fix="replace or remove the damaged file") from error
     tensor = torch.from_numpy(array.copy()).float() / 255.0
     return tensor.unsqueeze(0) if tensor.dim() == 2 else tensor.permute(2, 0, 1)
+
+
+def _require_tile_size(file: Path, width: int, height: int) -> None:
+    """Refuse an image whose header declares more than :data:`LARGEST_IMAGE_PIXELS` pixels."""
+    if width * height > LARGEST_IMAGE_PIXELS:
+        raise _too_large(file, f"{width:,} × {height:,} pixels")
+
+
+def _too_large(file: Path, declared: str) -> DataError:
+    return DataError(f"The image file {str(file)!r} declares {declared}, far beyond any tile "
+                     f"(at most {LARGEST_IMAGE_PIXELS:,} pixels are read); it was not decoded", where=str(file),
+                     fix="cut large scenes or slides into tiles first, or remove the file if you do not know "
+                         "where it came from")
 
 
 # -- array files ---------------------------------------------------------------------------------

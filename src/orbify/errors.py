@@ -66,7 +66,7 @@ class CheckpointError(OrbifyError):
 
 
 class TrustError(OrbifyError):
-    """A pickled whole model given without the explicit trust flag."""
+    """A pickled whole model without ``--trust-pickle``, or a converted file naming code without consent."""
 
 
 class OutputError(OrbifyError):

@@ -9,7 +9,7 @@ import torch
 import typer
 
 from orbify.cli.app import app, console, errors
-from orbify.cli.models import read_pair
+from orbify.cli.models import Trust, read_pair
 from orbify.cli.options import (
     SOURCE_HELP,
     BudgetOption,
@@ -20,6 +20,7 @@ from orbify.cli.options import (
     JsonOption,
     MarkdownOption,
     TrustOption,
+    TrustSourceOption,
     WeightsOption,
     parse_floats,
 )
@@ -69,6 +70,7 @@ def check(
                                             "filters) into this folder (needs matplotlib)."),
     weights: Optional[Path] = WeightsOption,
     trust_pickle: bool = TrustOption,
+    trust_source: bool = TrustSourceOption,
     force: bool = ForceOption,
 ) -> None:
     """Convert SOURCE in memory (or read a converted file) and report cost, exactness, drift and input-size safety.
@@ -82,7 +84,7 @@ def check(
     if inputs is not None:
         images = read_images(inputs, size=input_size, channels=channels or 3, limit=limit,
                              mean=parse_floats(mean, "--mean"), std=parse_floats(std, "--std"))
-    pair = read_pair(source, original_source, weights, trust_pickle, group, budget, head, init, input_size, channels,
+    pair = read_pair(source, original_source, weights, Trust(trust_pickle, trust_source), group, budget, head, init, input_size, channels,
                      images)
     if recalibrate:
         batches = images.images.split(16) if images is not None else [_random_inputs(pair.plan, 16)]

@@ -14,7 +14,7 @@ import typer
 from rich.table import Table
 
 from orbify.cli.app import app, console
-from orbify.cli.models import read_model
+from orbify.cli.models import Trust, read_model
 from orbify.cli.options import (
     BUDGET_HELP,
     GROUP_HELP,
@@ -122,7 +122,7 @@ def convert_command(
         options = {**CONVERT_DEFAULTS, **{key: value for key, value in given.items() if value is not None}}
     check_options(options)
     check_calibration(options["init"], calibration)
-    loaded = read_model(source, weights, trust_pickle)
+    loaded = read_model(source, weights, Trust(trust_pickle))
     require_reference(loaded.reference, source)
     original = loaded.module
     channels = channels or input_channels(original)

@@ -10,11 +10,11 @@ import typer
 from rich.table import Table
 
 from orbify.cli.app import app, console
-from orbify.cli.models import read_model
-from orbify.cli.options import SOURCE_HELP, ForceOption, TrustOption, WeightsOption
+from orbify.cli.models import Trust, read_converted, read_model
+from orbify.cli.options import SOURCE_HELP, ForceOption, TrustOption, TrustSourceOption, WeightsOption
 from orbify.errors import ExportError
 from orbify.files.export import FORMATS, export_model, run_exported
-from orbify.files.saving import is_converted_file, load
+from orbify.files.saving import is_converted_file
 from orbify.files.sources import IMAGENET_SIZE
 
 _DEFAULT_CHANNELS = 3
@@ -32,6 +32,7 @@ def export(
                                            f"{_DEFAULT_CHANNELS})."),
     weights: Optional[Path] = WeightsOption,
     trust_pickle: bool = TrustOption,
+    trust_source: bool = TrustSourceOption,
     force: bool = ForceOption,
 ) -> None:
     """Bake MODEL into plain torch layers and export it; then run the file once and compare it with MODEL.
@@ -39,11 +40,12 @@ def export(
     Example: orbify export resnet18-d4.orb --format onnx -o resnet18-d4.onnx
     """
     recorded: tuple[int, ...] = ()
+    trust = Trust(trust_pickle, trust_source)
     if weights is None and Path(model).is_file() and is_converted_file(Path(model)):
-        converted = load(model)
+        converted = read_converted(model, trust)
         module, recorded = converted.module, tuple(converted.plan.input_shape)
     else:
-        module = read_model(model, weights, trust_pickle).module
+        module = read_model(model, weights, trust).module
     if input_size is not None:
         spatial = (input_size, input_size)
     else:

@@ -11,17 +11,29 @@ from torch import nn
 from orbify.conversion.converter import convert
 from orbify.data import ImageSet
 from orbify.errors import OptionError
-from orbify.files.saving import is_converted_file, load
+from orbify.files.saving import LoadedConversion, is_converted_file, load
 from orbify.files.sources import LoadedSource, load_source, usual_input_size
 from orbify.graph.plan import ConversionPlan
 from orbify.graph.sizes import choose_input_size, input_channels
 
 
-def read_model(source: str, weights: Path | None = None, trust_pickle: bool = False) -> LoadedSource:
+@dataclass(frozen=True)
+class Trust:
+    """What the user allowed: unpickling a whole model (``--trust-pickle``) and running the code a converted
+    file names (``--trust-source``)."""
+
+    pickle: bool = False
+    source: bool = False
+
+
+def read_model(source: str, weights: Path | None = None, trust: Trust = Trust()) -> LoadedSource:
     """Build the model a SOURCE names; ``example`` is the bundled example model with its shipped weights."""
-    if source == "example":
-        return load_source("orbify.example:load_example_model", weights=weights, trust_pickle=trust_pickle)
-    return load_source(source, weights=weights, trust_pickle=trust_pickle)
+    return load_source(source, weights=weights, trust_pickle=trust.pickle, trust_source=trust.source)
+
+
+def read_converted(source: str, trust: Trust, original: str | None = None) -> LoadedConversion:
+    """Read a converted file; ``original`` is the plain SOURCE the user typed beside it (consent for that factory)."""
+    return load(source, trust_source=trust.source, original=original)
 
 
 def is_converted_source(source: str) -> bool:
@@ -39,7 +51,7 @@ class ModelPair:
     original: nn.Module
 
 
-def read_pair(source: str, original_source: str | None, weights: Path | None, trust_pickle: bool, group: str,
+def read_pair(source: str, original_source: str | None, weights: Path | None, trust: Trust, group: str,
               budget: str, head: str, init: str, input_size: int | None, channels: int | None,
               images: ImageSet | None = None) -> ModelPair:
     """The converted model, its plan and the original: converted in memory, or read from a converted file."""
@@ -49,13 +61,13 @@ def read_pair(source: str, original_source: str | None, weights: Path | None, tr
                               where="option --original",
                               fix="add --original SOURCE (and --weights for its weights), e.g. --original "
                                   "torchvision:resnet18 --weights resnet18.pt")
-        loaded = load(source)
-        original = read_model(original_source, weights, trust_pickle).module
+        loaded = read_converted(source, trust, original_source)
+        original = read_model(original_source, weights, trust).module
         return ModelPair(loaded.module, loaded.plan, original)
     if original_source is not None:
         raise OptionError("--original is for a converted file as SOURCE; here SOURCE is converted in memory",
                           where="option --original", fix="leave out --original, or give a converted (.orb) file")
-    original = read_model(source, weights, trust_pickle).module
+    original = read_model(source, weights, trust).module
     example = images.images[:1] if images is not None else example_input(original, source, input_size, channels)
     converted, plan = convert(original, group, budget, head, example, init=init)
     return ModelPair(converted, plan, original)

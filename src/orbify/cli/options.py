@@ -20,6 +20,10 @@ WeightsOption = typer.Option(None, "--weights", help="A state-dict file to load 
 TrustOption = typer.Option(False, "--trust-pickle", help="Allow loading a whole model pickled with torch.save(model). "
                            "Unpickling runs arbitrary code stored in the file: use it only for files you made yourself "
                            "or fully trust.")
+TrustSourceOption = typer.Option(False, "--trust-source", help="Allow a converted file to import and run the model "
+                                 "factory (package.module:factory) and leaf module types it records. A file may name "
+                                 "torchvision:NAME or example on its own; anything else is code the file chooses, so "
+                                 "allow it only for files you trust (or name the same factory yourself with --original).")
 ChannelsOption = typer.Option(None, "--channels", min=1, help="Input channels (default: those of the first conv).")
 
 # -- conversion -------------------------------------------------------------------------------------------

@@ -9,8 +9,8 @@ import typer
 from rich.table import Table
 
 from orbify.cli.app import app, console
-from orbify.cli.models import read_model
-from orbify.cli.options import SOURCE_HELP, TrustOption, WeightsOption
+from orbify.cli.models import Trust, read_model
+from orbify.cli.options import SOURCE_HELP, TrustOption, TrustSourceOption, WeightsOption
 from orbify.files.sources import IMAGENET_SIZE
 from orbify.graph.sizes import SizeChecker
 
@@ -23,12 +23,13 @@ def sizes(
     channels: int = typer.Option(3, "--channels", help="Input channels of the model."),
     weights: Optional[Path] = WeightsOption,
     trust_pickle: bool = TrustOption,
+    trust_source: bool = TrustSourceOption,
 ) -> None:
     """List safe input sizes near --near, and say which strided layers break at --near itself.
 
     Example: orbify sizes torchvision:resnet18 --near 224
     """
-    model = read_model(source, weights, trust_pickle).module
+    model = read_model(source, weights, Trust(trust_pickle, trust_source)).module
     checker = SizeChecker(model, channels)
     broken = checker.violations(near)
     if broken:

@@ -9,7 +9,7 @@ import torch
 import typer
 
 from orbify.cli.app import app, console
-from orbify.cli.models import is_converted_source, read_model
+from orbify.cli.models import Trust, is_converted_source, read_converted, read_model
 from orbify.cli.options import (
     BUDGET_HELP,
     SOURCE_HELP,
@@ -20,11 +20,11 @@ from orbify.cli.options import (
     JsonOption,
     MarkdownOption,
     TrustOption,
+    TrustSourceOption,
     WeightsOption,
 )
 from orbify.cli.outputs import refuse_existing
 from orbify.conversion.converter import convert
-from orbify.files.saving import load
 from orbify.files.sources import usual_input_size
 from orbify.graph.sizes import input_channels
 from orbify.recipes.schema import CONVERT_DEFAULTS
@@ -55,6 +55,7 @@ def summary(
     markdown_path: Optional[Path] = MarkdownOption,
     weights: Optional[Path] = WeightsOption,
     trust_pickle: bool = TrustOption,
+    trust_source: bool = TrustSourceOption,
     force: bool = ForceOption,
 ) -> None:
     """One row per conv, linear and norm layer: op, layouts, channels, kernel, stride, params, MACs, output shape.
@@ -62,7 +63,8 @@ def summary(
     Examples: orbify summary torchvision:resnet18; orbify summary torchvision:resnet18 --group c4
     """
     refuse_existing([json_path, markdown_path], force)
-    result = summarize_source(source, group, budget, head, input_size, channels, weights, trust_pickle)
+    result = summarize_source(source, group, budget, head, input_size, channels, weights,
+                              Trust(trust_pickle, trust_source))
     console.print(summary_table(result))
     if json_path is not None:
         write_json(json_path, result.to_dict(), force=force)
@@ -87,6 +89,7 @@ def diff(
     json_path: Optional[Path] = JsonOption,
     markdown_path: Optional[Path] = MarkdownOption,
     trust_pickle: bool = TrustOption,
+    trust_source: bool = TrustSourceOption,
     force: bool = ForceOption,
 ) -> None:
     """Compare two models layer by layer: rows aligned by node name, changed cells marked, totals with ratios.
@@ -97,10 +100,10 @@ def diff(
     orbify diff torchvision:resnet18 torchvision:resnet18 --group c4 --budget-a channels --budget-b params
     """
     refuse_existing([json_path, markdown_path], force)
-    a = summarize_source(source_a, group_a or group, budget_a or budget, head, input_size, channels, None,
-                         trust_pickle)
+    trust = Trust(trust_pickle, trust_source)
+    a = summarize_source(source_a, group_a or group, budget_a or budget, head, input_size, channels, None, trust)
     size = input_size or a.input_shape[-1]
-    b = summarize_source(source_b, group_b or group, budget_b or budget, head, size, channels, None, trust_pickle)
+    b = summarize_source(source_b, group_b or group, budget_b or budget, head, size, channels, None, trust)
     result = diff_summaries(a, b)
     console.print(diff_table(result))
     if json_path is not None:
@@ -110,15 +113,15 @@ def diff(
 
 
 def summarize_source(source: str, group: str | None, budget: str, head: str, input_size: int | None,
-                     channels: int | None, weights: Path | None, trust_pickle: bool) -> ModelSummary:
+                     channels: int | None, weights: Path | None, trust: Trust) -> ModelSummary:
     """Summarise a SOURCE: a converted file as it is, else the plain model, converted first when ``group`` is given."""
     if is_converted_source(source):
-        loaded = load(source)
+        loaded = read_converted(source, trust)
         shape = loaded.plan.input_shape
         size = (input_size, input_size) if input_size else tuple(shape[-2:])
         example = torch.zeros(1, channels or shape[1], *size)
         return summarize(loaded.module, example, loaded.plan, title=source)
-    model = read_model(source, weights, trust_pickle).module
+    model = read_model(source, weights, trust).module
     size = input_size or usual_input_size(source)[0]
     example = torch.zeros(1, channels or input_channels(model), size, size)
     if group is None:

@@ -17,15 +17,15 @@ from rich.table import Table
 from torch import fx, nn
 
 from orbify.cli.app import app, console
-from orbify.cli.models import is_converted_source, read_model
-from orbify.cli.options import ForceOption, TrustOption, parse_floats
+from orbify.cli.models import Trust, is_converted_source, read_converted, read_model
+from orbify.cli.options import ForceOption, TrustOption, TrustSourceOption, parse_floats
 from orbify.cli.outputs import refuse_output
 from orbify.common.options import check_choice
 from orbify.conversion.converter import convert
 from orbify.data import ImageSet, evenly_spaced, read_images
 from orbify.errors import OptionError
-from orbify.files.saving import load, require_reference, save
-from orbify.files.sources import TORCHVISION_PREFIX
+from orbify.files.saving import require_reference, save
+from orbify.files.sources import TORCHVISION_PREFIX, load_weights_file, rebuild
 from orbify.graph.plan import ConversionPlan
 from orbify.graph.sizes import SizeChecker, input_channels
 from orbify.recipes.schema import CALIBRATION_IMAGES, CONVERT_DEFAULTS
@@ -97,6 +97,7 @@ def tune_command(
     device: Optional[str] = typer.Option(None, "--device", help="cpu, cuda, cuda:1, ... (default: cuda:LOCAL_RANK "
                                          "where CUDA exists, else cpu)."),
     trust_pickle: bool = TrustOption,
+    trust_source: bool = TrustSourceOption,
     force: bool = ForceOption,
 ) -> None:
     """Tune a converted model by distillation from the original averaged over the group; write it to OUT.
@@ -115,7 +116,7 @@ def tune_command(
     refuse_output(out, force, inputs=[Path(model), weights, data])
     main = process_rank() == 0
     check_choice("init", init, TUNE_INITS)
-    inputs = read_inputs(model, original, weights, trust_pickle, group, budget, init, data, input_size, channels,
+    inputs = read_inputs(model, original, weights, Trust(trust_pickle, trust_source), group, budget, init, data, input_size, channels,
                          parse_floats(mean, "--mean"), parse_floats(std, "--std"), limit, quiet=not main)
     labels = inputs.data.labels if use_labels else None
     result = tune(inputs.student, inputs.teacher, inputs.plan.group, inputs.data.images, labels, epochs=epochs, lr=lr,
@@ -131,21 +132,23 @@ def tune_command(
     console.print(f"wrote {path} ({path.stat().st_size:,} bytes)", highlight=False)
 
 
-def read_inputs(model: str, original: str | None, weights: Path | None, trust_pickle: bool, group: str, budget: str,
+def read_inputs(model: str, original: str | None, weights: Path | None, trust: Trust, group: str, budget: str,
                 init: str, data: Path, input_size: int | None, channels: int | None, mean: list[float] | None,
                 std: list[float] | None, limit: int | None, quiet: bool) -> TuneInputs:
     """The student, its plan, the teacher, the reference to save with the result and the images."""
     if is_converted_source(model):
-        converted = load(model)
+        converted = read_converted(model, trust, original)
         reference = converted.metadata["source"]
         if original is None and weights is None:
             raise OptionError(f"The teacher is the original {reference!r} that {model!r} was converted from, and its "
                               "trained weights must come from --weights", where="option --weights",
                               fix="add --weights ORIGINAL.pt, or name an original that builds its own trained weights "
                                   "with --original (e.g. --original example)")
-        teacher_source = original or reference
-        _require_weights(teacher_source, weights)
-        teacher = read_model(teacher_source, weights, trust_pickle).module
+        _require_weights(original or reference, weights)
+        if original is not None:
+            teacher = read_model(original, weights, trust).module
+        else:
+            teacher = _rebuild_teacher(reference, weights)
         shape = converted.plan.input_shape
         images = read_images(data, size=input_size or shape[-1], channels=channels or shape[1], limit=limit,
                              mean=mean, std=std)
@@ -154,7 +157,7 @@ def read_inputs(model: str, original: str | None, weights: Path | None, trust_pi
         raise OptionError("--original is for a converted MODEL; a plain SOURCE is its own teacher",
                           where="option --original", fix="leave out --original, or give a converted (.orb) file")
     _require_weights(model, weights)
-    loaded = read_model(model, weights, trust_pickle)
+    loaded = read_model(model, weights, trust)
     require_reference(loaded.reference, model)
     teacher = loaded.module
     images = read_images(data, size=input_size, channels=channels or input_channels(teacher), limit=limit,
@@ -170,6 +173,13 @@ def read_inputs(model: str, original: str | None, weights: Path | None, trust_pi
     student, plan = convert(teacher, group, budget, "invariant", images.images[:1], init=init,
                             calibration=calibration, progress=not quiet)
     return TuneInputs(student, plan, teacher, loaded.reference, images)
+
+
+def _rebuild_teacher(reference: str, weights: Path) -> nn.Module:
+    """The original a converted file records (its consent already checked), with the trained weights from --weights."""
+    teacher = rebuild(reference)
+    load_weights_file(teacher, weights)
+    return teacher
 
 
 def _require_weights(source: str, weights: Path | None) -> None:

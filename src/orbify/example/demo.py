@@ -30,7 +30,7 @@ from orbify.errors import OutputError
 from orbify.example import make_tiles
 from orbify.files.export import export_model
 from orbify.files.saving import save
-from orbify.files.sources import load_source
+from orbify.files.sources import EXAMPLE_SOURCE, load_source
 from orbify.layers.bake import bake_model
 from orbify.recipes import load_recipe, merge_options
 from orbify.symmetry.groups import Group, parse_group
@@ -41,9 +41,6 @@ from orbify.tuning.teacher import view_logits
 from orbify.verification.check import CheckReport, check_model
 from orbify.verification.measure import count_macs, count_params
 from orbify.verification.report import check_markdown, markdown_table, plot_check, write_json, write_text
-
-EXAMPLE_SOURCE = "orbify.example:load_example_model"
-"""The SOURCE reference of the bundled model (what ``orbify convert example`` reads)."""
 
 RECIPE = "example"
 """The shipped recipe for the bundled model: budget, channel matching, input size and the tuning settings."""

@@ -16,7 +16,8 @@ A converted-model file (docs/design.md §15) is a ``torch.save`` archive of a di
 
 Reading never unpickles code: :func:`load` reads the archive with ``weights_only=True``, rebuilds
 the plain architecture from ``source``, converts it again with the recorded options and loads the
-state dict with strict key matching. A file whose major format version differs from
+state dict with strict key matching. A ``source`` or leaf type outside torchvision's registry and
+the bundled example is imported only with the user's consent (:mod:`orbify.files.consent`). A file whose major format version differs from
 :data:`FORMAT_VERSION` is refused; a newer minor version is read (it may only add fields).
 
 Importing this module teaches every model SOURCE (:func:`orbify.files.sources.load_source`) to read
@@ -25,7 +26,6 @@ converted-model files.
 
 from __future__ import annotations
 
-import importlib
 import json
 import zipfile
 from collections.abc import Mapping
@@ -39,7 +39,8 @@ from orbify.calibration.report import CalibrationReport
 from orbify.common.safe_io import PathLike, atomic_write, load_torch_weights
 from orbify.conversion.converter import convert
 from orbify.errors import CheckpointError, OptionError, OrbifyError, SourceError
-from orbify.files.sources import LoadedSource, rebuild, register_file_loader
+from orbify.files.consent import Consent, require_consent
+from orbify.files.sources import LoadedSource, import_module, rebuild, register_file_loader
 from orbify.graph.plan import ConversionPlan
 
 FORMAT_NAME = "orbify-converted-model"
@@ -74,7 +75,8 @@ def save(converted: fx.GraphModule, plan: ConversionPlan, path: PathLike, *, ref
         plan: the plan :func:`orbify.convert` returned with it.
         path: the output file; :data:`SUFFIX` (``.orb``) is the usual extension.
         reference: the plain architecture's source reference (:attr:`LoadedSource.reference`),
-            ``'torchvision:NAME'`` or ``'package.module:factory'``.
+            ``'torchvision:NAME'``, ``'example'`` or ``'package.module:factory'`` (a factory is
+            rebuilt on loading only with the reader's consent, :mod:`orbify.files.consent`).
         recipe: the name of the recipe the conversion followed, if any.
         check: figures from a check (JSON-serialisable values), stored as they are.
         leaf_types: the ``leaf_types`` the conversion was given.
@@ -85,7 +87,7 @@ def save(converted: fx.GraphModule, plan: ConversionPlan, path: PathLike, *, ref
     figures that are not JSON data, and :class:`~orbify.errors.OutputError` for an output that
     exists without ``force`` or cannot be written. Nothing is written when it raises.
 
-    Example (the bundled example architecture, rebuilt from its factory when the file is loaded):
+    Example (the bundled example architecture, rebuilt when the file is loaded):
 
     >>> import pathlib, tempfile
     >>> import torch
@@ -93,8 +95,7 @@ def save(converted: fx.GraphModule, plan: ConversionPlan, path: PathLike, *, ref
     >>> from orbify.example.model import build_example_cnn
     >>> converted, plan = orbify.convert(build_example_cnn().eval(), "c4", example_input=torch.zeros(1, 3, 33, 33))
     >>> with tempfile.TemporaryDirectory() as folder:
-    ...     path = orbify.save(converted, plan, pathlib.Path(folder) / "example-c4.orb",
-    ...                        reference="orbify.example.model:build_example_cnn")
+    ...     path = orbify.save(converted, plan, pathlib.Path(folder) / "example-c4.orb", reference="example")
     ...     print(path.name, path.stat().st_size > 0)
     example-c4.orb True
     """
@@ -160,12 +161,20 @@ def _float_dtype(module: nn.Module) -> torch.dtype:
     return torch.float32
 
 
-def load(path: PathLike) -> LoadedConversion:
+def load(path: PathLike, *, trust_source: bool = False, original: str | None = None) -> LoadedConversion:
     """Read a converted-model file: rebuild, reconvert and load its weights (no pickled code runs).
 
-    Raises :class:`CheckpointError` when the file is missing, empty, truncated, damaged, not a
-    converted-model file, of an incompatible major format version, names a source that cannot be
-    rebuilt here, or holds a state dict that does not fit the rebuilt model (the keys are named).
+    The file's ``source`` is rebuilt without asking when it is ``torchvision:NAME`` (checked in
+    torchvision's registry first) or ``example``. A ``package.module:factory`` source, or a recorded
+    leaf type, is imported only when ``trust_source`` is true or ``original`` is that same
+    reference (the user typed it; leaf types from its module are then allowed too). The working
+    directory is searched for a module only when ``original`` names it.
+
+    Raises :class:`~orbify.errors.TrustError`, before anything is imported, for a file naming code
+    without that consent, and :class:`CheckpointError` when the file is missing, empty, truncated,
+    damaged, not a converted-model file, of an incompatible major format version, names a source
+    that cannot be rebuilt here, or holds a state dict that does not fit the rebuilt model (the keys
+    are named).
 
     Example (save, then load: the same weights, the model in eval mode, the plan and the recorded source):
 
@@ -175,12 +184,11 @@ def load(path: PathLike) -> LoadedConversion:
     >>> from orbify.example.model import build_example_cnn
     >>> converted, plan = orbify.convert(build_example_cnn().eval(), "c4", example_input=torch.zeros(1, 3, 33, 33))
     >>> with tempfile.TemporaryDirectory() as folder:
-    ...     path = orbify.save(converted, plan, pathlib.Path(folder) / "example-c4.orb",
-    ...                        reference="orbify.example.model:build_example_cnn")
+    ...     path = orbify.save(converted, plan, pathlib.Path(folder) / "example-c4.orb", reference="example")
     ...     loaded = orbify.load(path)
     >>> x = torch.randn(2, 3, 33, 33)
     >>> torch.equal(loaded.module(x), converted(x)), loaded.plan.group, loaded.metadata["source"]
-    (True, 'c4', 'orbify.example.model:build_example_cnn')
+    (True, 'c4', 'example')
     """
     source = Path(path)
     content = load_torch_weights(source, what=_WHAT)
@@ -188,7 +196,12 @@ def load(path: PathLike) -> LoadedConversion:
     state = content[STATE_KEY]
     if not isinstance(state, Mapping) or not all(isinstance(v, torch.Tensor) for v in state.values()):
         raise _not_ours(source, f"its '{STATE_KEY}' entry is not a dict of tensors")
-    module = _rebuild(source, metadata)
+    leaf_types = metadata["conversion"].get("leaf_types") or []
+    if not isinstance(leaf_types, list):
+        raise _not_ours(source, "its leaf types are not a list")
+    consent = Consent(trust_source, original)
+    require_consent(source, str(metadata["source"]), leaf_types, consent)
+    module = _rebuild(source, metadata, consent)
     _load_state(source, module, state)
     try:
         plan = ConversionPlan.from_dict(metadata["plan"], CalibrationReport.from_dict)
@@ -237,13 +250,14 @@ def _not_ours(source: Path, why: str) -> CheckpointError:
                                "or give plain weights with --weights")
 
 
-def _rebuild(source: Path, metadata: dict) -> fx.GraphModule:
-    """Rebuild the plain architecture and convert it with the recorded options."""
+def _rebuild(source: Path, metadata: dict, consent: Consent) -> fx.GraphModule:
+    """Rebuild the plain architecture and convert it with the recorded options (consent already given)."""
     reference = metadata["source"]
     options = metadata["conversion"]
+    working_directory = consent.searches_working_directory(reference)
     try:
-        plain = rebuild(reference)
-        leaf_types = tuple(_import_type(name) for name in options.get("leaf_types", []))
+        plain = rebuild(reference, working_directory=working_directory)
+        leaf_types = tuple(_import_type(name, working_directory) for name in options.get("leaf_types") or [])
     except SourceError as error:
         raise CheckpointError(
             f"The {_WHAT} {str(source)!r} was converted from {reference!r}, which cannot be rebuilt here: {error.what}",
@@ -265,11 +279,11 @@ def _rebuild(source: Path, metadata: dict) -> fx.GraphModule:
     return module.to(dtype)
 
 
-def _import_type(name: str) -> type:
+def _import_type(name: str, working_directory: bool) -> type:
     """The class a ``module:qualname`` string names (a recorded leaf type)."""
     module_name, _, qualname = str(name).partition(":")
     try:
-        found: object = importlib.import_module(module_name)
+        found: object = import_module(module_name, working_directory=working_directory)
         for part in qualname.split("."):
             found = getattr(found, part)
     except (ImportError, AttributeError, ValueError) as error:
@@ -317,9 +331,9 @@ def is_converted_file(path: Path) -> bool:
         return False
 
 
-def _load_as_source(path: Path) -> LoadedSource:
+def _load_as_source(path: Path, trust_source: bool) -> LoadedSource:
     """The file-loader hook: a converted file read as a model SOURCE (no reference: only the file rebuilds it)."""
-    return LoadedSource(load(path).module, None)
+    return LoadedSource(load(path, trust_source=trust_source).module, None)
 
 
 register_file_loader(is_converted_file, _load_as_source)

@@ -5,6 +5,9 @@ A SOURCE is one of, tried in this order:
 ``torchvision:NAME``
     A torchvision architecture, e.g. ``torchvision:resnet18``, built with random weights
     (never downloaded; pretrained weights come from a separate weights file).
+``example``
+    The bundled example CNN (:mod:`orbify.example`) with its shipped weights; rebuilt from a
+    reference, the architecture alone.
 a path to an existing file
     First offered to the file loaders added with :func:`register_file_loader` (the extension
     point for orbify's own file formats), then read as a whole model pickled with
@@ -15,7 +18,9 @@ a path to an existing file
     may be a dotted attribute path such as ``Class.build``.
 
 :func:`load_source` builds the model and optionally loads a weights file into it;
-:func:`rebuild` builds the architecture again from the ``reference`` string it reported.
+:func:`rebuild` builds the architecture again from the ``reference`` string it reported. A
+SOURCE the user typed may name a module in the working directory; a reference read from a file
+never searches it (docs/design.md §16).
 """
 
 from __future__ import annotations
@@ -38,9 +43,18 @@ from orbify.common.safe_io import PathLike, damaged_file_error, load_torch_weigh
 from orbify.errors import CheckpointError, SourceError, TrustError
 
 TORCHVISION_PREFIX = "torchvision:"
+EXAMPLE_SOURCE = "example"
+BUNDLED_FACTORIES = {
+    EXAMPLE_SOURCE: "orbify.example.model:build_example_cnn",
+    "orbify.example.model:build_example_cnn": "orbify.example.model:build_example_cnn",
+    "orbify.example:load_example_model": "orbify.example:load_example_model",
+}
+"""References to orbify's own example, with the factory each calls: ``example`` and the two factory
+references that files written before ``example`` was a reference of its own record."""
+_EXAMPLE_WITH_WEIGHTS = "orbify.example:load_example_model"
 FACTORY_PATTERN = re.compile(r"^(?P<module>[A-Za-z_][\w.]*):(?P<attribute>[A-Za-z_][\w.]*)$")
 _ACCEPTED_FORMS = (
-    "give torchvision:NAME (e.g. torchvision:resnet18), package.module:factory, "
+    "give torchvision:NAME (e.g. torchvision:resnet18), example, package.module:factory, "
     "or the path of a model file"
 )
 _LISTED_KEYS = 5
@@ -66,7 +80,7 @@ class LoadedSource:
 
 
 FileClaim = Callable[[Path], bool]
-FileLoader = Callable[[Path], LoadedSource]
+FileLoader = Callable[[Path, bool], LoadedSource]
 _file_loaders: list[tuple[FileClaim, FileLoader]] = []
 
 
@@ -74,9 +88,10 @@ def register_file_loader(claims: FileClaim, load: FileLoader) -> Callable[[], No
     """Teach :func:`load_source` to read a file format; return a function that undoes it.
 
     For a SOURCE that names an existing file, loaders are asked in the order they were
-    registered: the first whose ``claims(path)`` is true builds the model with ``load(path)``.
-    ``claims`` should look only at cheap signs (suffix, a magic header) and never raise;
-    ``load`` should read with ``weights_only=True`` and raise :class:`CheckpointError` for a
+    registered: the first whose ``claims(path)`` is true builds the model with
+    ``load(path, trust_source)``. ``claims`` should look only at cheap signs (suffix, a magic
+    header) and never raise; ``load`` should read with ``weights_only=True``, run code the file
+    names only with ``trust_source`` (docs/design.md §16) and raise :class:`CheckpointError` for a
     damaged file. Files no loader claims are read as pickled whole models.
     """
     entry = (claims, load)
@@ -94,35 +109,43 @@ def load_source(
     *,
     weights: PathLike | None = None,
     trust_pickle: bool = False,
+    trust_source: bool = False,
 ) -> LoadedSource:
     """Build the model that ``spec`` names, load ``weights`` into it and put it in eval mode.
 
     ``weights`` is a ``torch.save`` file read with ``weights_only=True``: a state dict, or a
     dict holding one under ``'state_dict'`` or ``'model'``. Every key and shape must match
-    the model. Raises :class:`SourceError` for a SOURCE that cannot be built,
-    :class:`TrustError` for a pickled model without ``trust_pickle``, and
-    :class:`CheckpointError` for an unreadable or mismatched file.
+    the model. ``spec`` counts as typed by the user: a factory module may come from the working
+    directory. ``trust_source`` lets a converted file given as ``spec`` run the factory and leaf
+    types it records. Raises :class:`SourceError` for a SOURCE that cannot be built,
+    :class:`TrustError` for a pickled model without ``trust_pickle`` or a converted file naming
+    code without ``trust_source``, and :class:`CheckpointError` for an unreadable or mismatched file.
     """
-    loaded = _build(spec, trust_pickle=trust_pickle)
+    loaded = _build(spec, trust_pickle=trust_pickle, trust_source=trust_source)
     if weights is not None:
         load_weights_file(loaded.module, weights)
     loaded.module.eval()
     return loaded
 
 
-def rebuild(reference: str) -> nn.Module:
+def rebuild(reference: str, *, working_directory: bool = False) -> nn.Module:
     """Build the architecture that a :class:`LoadedSource` ``reference`` names, in eval mode.
 
-    The weights are freshly initialised: no weights are read or downloaded.
+    The weights are freshly initialised (the example's factory of older files loads its shipped
+    ones): no weights are read or downloaded. A torchvision name is looked up in torchvision's
+    registry before anything is built. ``working_directory`` lets a factory's module be found in
+    the working directory: only for a reference the user typed, never for one read from a file.
     """
     if reference.startswith(TORCHVISION_PREFIX):
         module = _build_torchvision(reference[len(TORCHVISION_PREFIX):])
+    elif reference in BUNDLED_FACTORIES:
+        module = _build_factory(BUNDLED_FACTORIES[reference], working_directory=False)
     elif FACTORY_PATTERN.match(reference):
-        module = _build_factory(reference)
+        module = _build_factory(reference, working_directory=working_directory)
     else:
         raise SourceError(
             f"{reference!r} is not a reference that can be rebuilt",
-            fix="use torchvision:NAME or package.module:factory",
+            fix="use torchvision:NAME, example or package.module:factory",
         )
     return module.eval()
 
@@ -133,24 +156,26 @@ def usual_input_size(source: str) -> tuple[int, str]:
     ``example`` → 33 (its tile size); ``torchvision:NAME`` → 224 (ImageNet backbones); anything
     else → 224, the most common size of pretrained backbones.
     """
-    if source == "example":
+    if source == EXAMPLE_SOURCE:
         return EXAMPLE_SIZE, "the bundled example's tile size"
     if source.startswith(TORCHVISION_PREFIX):
         return IMAGENET_SIZE, "the usual input of torchvision's ImageNet backbones"
     return IMAGENET_SIZE, "the usual input of ImageNet backbones, assumed for a model of unknown origin"
 
 
-def _build(spec: str, *, trust_pickle: bool) -> LoadedSource:
+def _build(spec: str, *, trust_pickle: bool, trust_source: bool) -> LoadedSource:
     """Dispatch on the form of ``spec`` (see the module docstring for the order)."""
     if not spec.strip():
         raise SourceError("No model source was given", fix=_ACCEPTED_FORMS)
     if spec.startswith(TORCHVISION_PREFIX):
         return LoadedSource(rebuild(spec), spec.lower())
+    if spec == EXAMPLE_SOURCE:
+        return LoadedSource(_build_factory(_EXAMPLE_WITH_WEIGHTS, working_directory=False), EXAMPLE_SOURCE)
     path = Path(spec)
     if path.is_file():
-        return _load_file(path, trust_pickle=trust_pickle)
+        return _load_file(path, trust_pickle=trust_pickle, trust_source=trust_source)
     if FACTORY_PATTERN.match(spec):
-        return LoadedSource(rebuild(spec), spec)
+        return LoadedSource(rebuild(spec, working_directory=True), spec)
     if path.exists():
         raise SourceError(f"The model source {spec!r} is a directory, not a file", fix=_ACCEPTED_FORMS)
     if path.suffix or "/" in spec or "\\" in spec:
@@ -183,27 +208,33 @@ def _build_torchvision(name: str) -> nn.Module:
     return builder(**no_download)
 
 
-def _import_with_working_directory(module_name: str):
-    """Import a module the way ``python -m`` would: the working directory is searched too.
+def import_module(module_name: str, *, working_directory: bool):
+    """Import a module with the working directory searched (``working_directory``) or not.
 
-    Console scripts leave the working directory off ``sys.path``; a user's own model file in the
-    folder they run ``orbify`` from should still be found.
+    Searched, the import behaves as under ``python -m``: a user's own model file in the folder they
+    run ``orbify`` from is found although console scripts leave that folder off ``sys.path``. Not
+    searched, the folder (``''``, ``'.'`` or its absolute path) is taken off ``sys.path`` while the
+    import runs, so a file dropped next to a downloaded model cannot stand in for a module.
     """
-    here = os.getcwd()
-    if here in sys.path or "" in sys.path:
-        return importlib.import_module(module_name)
-    sys.path.insert(0, here)
+    here = os.path.abspath(os.getcwd())
+    saved = list(sys.path)
+    if working_directory:
+        if here not in sys.path and "" not in sys.path:
+            sys.path.insert(0, here)
+    else:
+        sys.path[:] = [entry for entry in sys.path if os.path.abspath(entry or os.curdir) != here]
     try:
         return importlib.import_module(module_name)
     finally:
-        sys.path.remove(here)
+        added = [entry for entry in sys.path if entry not in saved and entry != here]
+        sys.path[:] = saved + added
 
 
-def _build_factory(spec: str) -> nn.Module:
+def _build_factory(spec: str, *, working_directory: bool) -> nn.Module:
     """Import ``package.module`` and call ``factory()``; it must return an ``nn.Module``."""
     module_name, attribute_path = spec.split(":", 1)
     try:
-        namespace = _import_with_working_directory(module_name)
+        namespace = import_module(module_name, working_directory=working_directory)
     except ModuleNotFoundError as error:
         if error.name is not None and (module_name == error.name or module_name.startswith(error.name + ".")):
             raise SourceError(
@@ -252,11 +283,11 @@ def _build_factory(spec: str) -> nn.Module:
     return model
 
 
-def _load_file(path: Path, *, trust_pickle: bool) -> LoadedSource:
+def _load_file(path: Path, *, trust_pickle: bool, trust_source: bool) -> LoadedSource:
     """A registered file format, or else a pickled whole model (only with ``trust_pickle``)."""
     for claims, load in _file_loaders:
         if claims(path):
-            return load(path)
+            return load(path, trust_source)
     if not trust_pickle:
         refused = unsafe_globals(path)
         if refused:

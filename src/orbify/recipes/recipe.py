@@ -10,7 +10,7 @@ from types import MappingProxyType
 from torch import nn
 
 from orbify.errors import OptionError
-from orbify.files.sources import TORCHVISION_PREFIX
+from orbify.files.sources import EXAMPLE_SOURCE, TORCHVISION_PREFIX
 from orbify.graph.sizes import SizeChecker
 from orbify.recipes.schema import recipe_error
 
@@ -121,7 +121,7 @@ def merge_options(recipe: Recipe, overrides: Mapping[str, object], section: str 
 
 
 def _source(architecture: str) -> str:
-    if architecture.startswith(TORCHVISION_PREFIX) or ":" in architecture:
+    if architecture == EXAMPLE_SOURCE or architecture.startswith(TORCHVISION_PREFIX) or ":" in architecture:
         return architecture
     return TORCHVISION_PREFIX + architecture
 

@@ -25,7 +25,7 @@ from pathlib import Path
 
 from orbify.conversion.converter import convert
 from orbify.errors import GroupError, RecipeError
-from orbify.files.sources import FACTORY_PATTERN, TORCHVISION_PREFIX
+from orbify.files.sources import EXAMPLE_SOURCE, FACTORY_PATTERN, TORCHVISION_PREFIX
 from orbify.graph.plan import BUDGETS, HEADS, INITS
 from orbify.symmetry.groups import parse_group
 from orbify.tuning.options import SCHEDULES, TuneOptions
@@ -85,7 +85,9 @@ def _architectures(value: list) -> str | None:
 
 
 def _architecture(entry: str) -> str | None:
-    """None for a known torchvision name or a ``package.module:factory`` reference."""
+    """None for a known torchvision name, ``example`` or a ``package.module:factory`` reference."""
+    if entry == EXAMPLE_SOURCE:
+        return None
     name = entry[len(TORCHVISION_PREFIX):] if entry.startswith(TORCHVISION_PREFIX) else entry
     if ":" in name:
         return None if FACTORY_PATTERN.match(name) else f"{entry!r} is not of the form package.module:factory"
