@@ -119,3 +119,15 @@ def test_calibrated_digits_quick():
     assert len(budget_rows) == 2   # c4 and d4 at the one quick learning rate
     assert all(-100 <= float(cell) <= 100 for row in budget_rows for cell in row[2:])   # points from TTA
     assert "smallest budget" in output
+
+
+def test_streaming_quick():
+    output = run_quick("streaming.py")
+    cache = {row[0]: row for row in rows(output, "first") + rows(output, "second")}
+    assert leading_number(cache["first"][1]) > 0 and "reused: True" in cache["second"][2]
+    speeds = [leading_number(row[1]) for name in ("plain PyTorch fine-tuning of the original",
+                                                  "orbify tune, cached teacher (cache reused)",
+                                                  "orbify tune, online teacher, light augmentation")
+              for row in rows(output, name)]
+    assert len(speeds) == 3 and all(rate > 0 for rate in speeds)
+    assert "online costs" in output and "expected" in output

@@ -1,8 +1,9 @@
 """Tuning on two processes launched by torchrun (gloo on the CPU): the replicas end identical.
 
 Run as a script (``python -m torch.distributed.run --nproc_per_node=2 tests/test_tune_distributed.py OUT``)
-this file is the worker: every process tunes the same tiny converted model and saves its own
-final state dict, so the test can compare the replicas.
+this file is the worker: every process tunes the same tiny converted model on images streamed from
+a memory-mapped .npy file, both computing their share of one teacher cache, and saves its own final
+state dict, so the test can compare the replicas.
 """
 
 from __future__ import annotations
@@ -14,6 +15,7 @@ import subprocess
 import sys
 from pathlib import Path
 
+import numpy as np
 import pytest
 import torch
 
@@ -23,13 +25,16 @@ GROUP = "c4"
 
 
 def worker(out: Path) -> None:
+    from orbify.data.catalog import open_tiles
+    from orbify.data.tiles import Preparation
     from orbify.tuning.loop import tune
 
     original = tiny_original()
     student = tiny_student(original, GROUP)
-    images, labels = tiny_data()
-    result = tune(student, original, GROUP, images, labels, epochs=2, lr=1e-2, batch_size=8, seed=3,
-                  checkpoint_path=out / "checkpoint.pt", progress=False)
+    tiles = open_tiles(out / "images.npy", preparation=Preparation(channels=1))
+    result = tune(student, original, GROUP, tiles, epochs=2, lr=1e-2, batch_size=8, seed=3, use_labels=False,
+                  checkpoint_path=out / "checkpoint.pt", teacher_cache=out / "teacher", checkpoint_every=2,
+                  progress=False, workers=1)
     rank = int(os.environ["RANK"])
     torch.save(student.state_dict(), out / f"rank{rank}.pt")
     (out / f"rank{rank}.json").write_text(json.dumps({"processes": result.processes,
@@ -44,6 +49,7 @@ def _free_port() -> int:
 
 @pytest.mark.slow
 def test_two_processes_end_with_identical_weights(tmp_path):
+    np.save(tmp_path / "images.npy", tiny_data()[0].numpy())
     command = [sys.executable, "-m", "torch.distributed.run", "--nproc_per_node=2", "--nnodes=1",
                "--master_addr=127.0.0.1", f"--master_port={_free_port()}", __file__, str(tmp_path)]
     finished = subprocess.run(command, capture_output=True, text=True, timeout=120)
@@ -57,6 +63,7 @@ def test_two_processes_end_with_identical_weights(tmp_path):
     assert reports[0]["processes"] == reports[1]["processes"] == 2
     assert reports[0]["train_loss"] == reports[1]["train_loss"]   # the loss is averaged over both processes
     assert (tmp_path / "checkpoint.pt").is_file()
+    assert json.loads((tmp_path / "teacher" / "key.json").read_text())["key"]["samples"] == 60
     assert not list(tmp_path.glob(".*.tmp"))
 
     # Gradients reached the tied bases under DDP: every stored base weight moved.

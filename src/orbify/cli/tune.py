@@ -12,6 +12,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Optional
 
+import torch
 import typer
 from rich.table import Table
 from torch import fx, nn
@@ -22,7 +23,9 @@ from orbify.cli.options import ForceOption, TrustOption, TrustSourceOption, pars
 from orbify.cli.outputs import refuse_output
 from orbify.common.options import check_choice
 from orbify.conversion.converter import convert
-from orbify.data import ImageSet, evenly_spaced, read_images
+from orbify.data.catalog import open_tiles
+from orbify.data.images import evenly_spaced
+from orbify.data.tiles import Preparation, Tiles
 from orbify.errors import OptionError
 from orbify.files.saving import require_reference, save
 from orbify.files.sources import TORCHVISION_PREFIX, load_weights_file, rebuild
@@ -31,12 +34,14 @@ from orbify.graph.sizes import SizeChecker, input_channels
 from orbify.recipes.schema import CALIBRATION_IMAGES, CONVERT_DEFAULTS
 from orbify.tuning.distributed import process_rank
 from orbify.tuning.loop import tune
-from orbify.tuning.options import SCHEDULES, TuneOptions
+from orbify.tuning.options import DEFAULT_VAL_LIMIT, SCHEDULES, RunSettings, TuneOptions
 from orbify.tuning.records import TuneResult
 from orbify.tuning.teacher import VIEW_COMBINATIONS
+from orbify.verification.report import write_text
 
 _TUNE = TuneOptions()
 """The defaults of the tuning options, as :func:`orbify.tune` has them."""
+_SETTINGS = RunSettings()
 
 TUNE_INITS = ("orbit-average", "calibrated")
 """Initialisations of a SOURCE converted on the fly for tuning (embed needs the fields budget's width)."""
@@ -44,21 +49,46 @@ TUNE_INITS = ("orbit-average", "calibrated")
 
 @dataclass
 class TuneInputs:
-    """What the command tunes: the student with its plan, the teacher, the reference saved with the result, the data."""
+    """What the command tunes: the student with its plan, the teacher, the reference saved with the result, the training
+    and (when given separately) validation data."""
 
     student: fx.GraphModule
     plan: ConversionPlan
     teacher: nn.Module
     reference: str | None
-    data: ImageSet
+    data: Tiles
+    val: Tiles | None
 
 
 @app.command("tune")
 def tune_command(
     model: str = typer.Argument(..., help="A converted-model file (.orb), or a plain model SOURCE to convert first "
                                 "(torchvision:NAME, package.module:factory, 'example', a pickled model)."),
-    data: Path = typer.Option(..., "--data", help="An image folder (one sub-folder per class gives labels) or an "
-                              ".npz file with 'images' and optionally 'labels'."),
+    data: Path = typer.Option(..., "--data", help="The training images: a folder (one sub-folder per class gives "
+                              "labels), a CSV manifest (path, optional label and split columns), an .npy array "
+                              "(memory-mapped), an .npz file (read whole: images, optional labels), or tar shards "
+                              "('tiles-{0000..0099}.tar'; needs orbify[shards]). Read lazily in --workers processes."),
+    val: Optional[Path] = typer.Option(None, "--val", help="Separate validation images (the same forms); default: a "
+                                       "manifest's 'val' rows, else the --holdout share of --data."),
+    val_limit: int = typer.Option(DEFAULT_VAL_LIMIT, "--val-limit", min=1, help="Evaluate at most this many "
+                                  "validation images, evenly spaced (each epoch, as given and moved by every element)."),
+    augment: str = typer.Option(_TUNE.augment, "--augment", help="Augmentation of the training images: none, light "
+                                "(crop, small turn, flips outside the group, brightness/contrast) or strong (adds colour "
+                                "jitter and blur); needs --teacher online."),
+    teacher: str = typer.Option(_TUNE.teacher, "--teacher", help="cached: the original averaged over the group runs "
+                                "once per image and its outputs are kept on disk (--teacher-cache); online: it runs on "
+                                "every batch (|G| forward passes per step; needed with --augment)."),
+    teacher_cache: Optional[Path] = typer.Option(None, "--teacher-cache", help="Folder of the cached teacher outputs "
+                                                 "(default: OUT.teacher); reused by a later run with the same original, "
+                                                 "group, views, data and preprocessing."),
+    workers: Optional[int] = typer.Option(None, "--workers", min=0, help="Processes that read and decode images, per "
+                                          "training process (default: half the cores, at most 8; 0: none)."),
+    checkpoint_every: Optional[int] = typer.Option(None, "--checkpoint-every", min=1, help="Also checkpoint every N "
+                                                   "steps within an epoch (--resume continues mid-epoch)."),
+    skip_unreadable: bool = typer.Option(False, "--skip-unreadable", help="Skip images that cannot be read, count "
+                                         "them and list them in OUT.skipped.txt, instead of stopping."),
+    precision: str = typer.Option(_SETTINGS.precision, "--precision", help="auto (bfloat16 autocast on GPUs, "
+                                  "float32 on CPUs), float32, or bf16 (GPUs only)."),
     out: Path = typer.Option(..., "--out", "-o", help="The tuned converted-model file to write (.orb)."),
     original: Optional[str] = typer.Option(None, "--original", help="With a converted MODEL: the plain model the "
                                            "teacher is built from (default: the source the file records)."),
@@ -113,29 +143,57 @@ def tune_command(
     if views not in VIEW_COMBINATIONS:
         raise OptionError(f"Unknown view combination {views!r}", where="option --views",
                           fix=f"choose one of: {', '.join(VIEW_COMBINATIONS)}")
-    refuse_output(out, force, inputs=[Path(model), weights, data])
+    refuse_output(out, force, inputs=[Path(model), weights, data, val])
     main = process_rank() == 0
     check_choice("init", init, TUNE_INITS)
-    inputs = read_inputs(model, original, weights, Trust(trust_pickle, trust_source), group, budget, init, data, input_size, channels,
-                         parse_floats(mean, "--mean"), parse_floats(std, "--std"), limit, quiet=not main)
-    labels = inputs.data.labels if use_labels else None
-    result = tune(inputs.student, inputs.teacher, inputs.plan.group, inputs.data.images, labels, epochs=epochs, lr=lr,
+    TuneOptions(augment=augment, teacher=teacher).validate()
+    preparing = Preparing(data, val, input_size, channels, parse_floats(mean, "--mean"), parse_floats(std, "--std"),
+                          limit)
+    inputs = read_inputs(model, original, weights, Trust(trust_pickle, trust_source), group, budget, init, preparing,
+                         quiet=not main)
+    result = tune(inputs.student, inputs.teacher, inputs.plan.group, inputs.data, val=inputs.val, epochs=epochs, lr=lr,
                   batch_size=batch_size, view_combination=views, label_weight=label_weight, holdout_fraction=holdout,
-                  schedule=schedule, seed=seed, checkpoint_path=checkpoint or out.with_name(out.name + ".checkpoint"),
-                  resume=resume, force=force, recalibrate=recalibrate, progress=main, device=device)
+                  schedule=schedule, seed=seed, augment=augment, teacher=teacher, use_labels=use_labels,
+                  checkpoint_path=checkpoint or out.with_name(out.name + ".checkpoint"), resume=resume, force=force,
+                  recalibrate=recalibrate, progress=main, device=device, workers=workers,
+                  checkpoint_every=checkpoint_every, skip_unreadable=skip_unreadable, precision=precision,
+                  teacher_cache=teacher_cache or out.with_name(out.name + ".teacher"), val_limit=val_limit)
     if result.rank != 0:
         return
     console.print(history_table(result))
+    console.print(teacher_line(result), highlight=False)
     for note in result.notes:
         console.print(f"[yellow]note:[/] {note}", highlight=False)
+    if result.skipped:
+        listed = write_text(out.with_name(out.name + ".skipped.txt"), "\n".join(result.skipped) + "\n", force=force)
+        console.print(f"[yellow]skipped {len(result.skipped)} unreadable image(s)[/], listed in {listed}",
+                      highlight=False)
     path = save(inputs.student.cpu(), inputs.plan, out, reference=inputs.reference, force=force)
     console.print(f"wrote {path} ({path.stat().st_size:,} bytes)", highlight=False)
 
 
+@dataclass(frozen=True)
+class Preparing:
+    """Where the images are and how to prepare them, as the command line gave it."""
+
+    data: Path
+    val: Path | None
+    size: int | None
+    channels: int | None
+    mean: list[float] | None
+    std: list[float] | None
+    limit: int | None
+
+    def open(self, size: int, channels: int) -> tuple[Tiles, Tiles | None]:
+        """The training and validation tiles, prepared at ``size`` with ``channels``."""
+        preparation = Preparation(channels, size, _tuple(self.mean), _tuple(self.std))
+        train = open_tiles(self.data, preparation=preparation, limit=self.limit)
+        return train, open_tiles(self.val, preparation=preparation) if self.val is not None else None
+
+
 def read_inputs(model: str, original: str | None, weights: Path | None, trust: Trust, group: str, budget: str,
-                init: str, data: Path, input_size: int | None, channels: int | None, mean: list[float] | None,
-                std: list[float] | None, limit: int | None, quiet: bool) -> TuneInputs:
-    """The student, its plan, the teacher, the reference to save with the result and the images."""
+                init: str, preparing: Preparing, quiet: bool) -> TuneInputs:
+    """The student, its plan, the teacher, the reference to save with the result and the data."""
     if is_converted_source(model):
         converted = read_converted(model, trust, original)
         reference = converted.metadata["source"]
@@ -150,9 +208,8 @@ def read_inputs(model: str, original: str | None, weights: Path | None, trust: T
         else:
             teacher = _rebuild_teacher(reference, weights)
         shape = converted.plan.input_shape
-        images = read_images(data, size=input_size or shape[-1], channels=channels or shape[1], limit=limit,
-                             mean=mean, std=std)
-        return TuneInputs(converted.module, converted.plan, teacher, reference, images)
+        train, val = preparing.open(preparing.size or shape[-1], preparing.channels or shape[1])
+        return TuneInputs(converted.module, converted.plan, teacher, reference, train, val)
     if original is not None:
         raise OptionError("--original is for a converted MODEL; a plain SOURCE is its own teacher",
                           where="option --original", fix="leave out --original, or give a converted (.orb) file")
@@ -160,19 +217,26 @@ def read_inputs(model: str, original: str | None, weights: Path | None, trust: T
     loaded = read_model(model, weights, trust)
     require_reference(loaded.reference, model)
     teacher = loaded.module
-    images = read_images(data, size=input_size, channels=channels or input_channels(teacher), limit=limit,
-                         mean=mean, std=std)
-    size = images.images.shape[-1]
-    checker = SizeChecker(teacher, images.images.shape[1])
+    channels = preparing.channels or input_channels(teacher)
+    size = preparing.size or preparing.open(None, channels)[0][0][0].shape[-1]
+    train, val = preparing.open(size, channels)
+    checker = SizeChecker(teacher, channels)
     if not quiet and not checker.is_safe(size):
         nearby = ", ".join(map(str, checker.safe_sizes(size, 3)))
         console.print(f"[yellow]warning:[/] the images' size {size} is not safe for this model "
                       f"({checker.violations(size)[0]}), so the converted model is not exactly invariant at it; "
                       f"safe sizes nearby: {nearby or 'none found'} (--input-size)", highlight=False)
-    calibration = images.images[evenly_spaced(len(images), CALIBRATION_IMAGES)] if init == "calibrated" else None
-    student, plan = convert(teacher, group, budget, "invariant", images.images[:1], init=init,
+    calibration = None
+    if init == "calibrated":
+        chosen = evenly_spaced(len(train), CALIBRATION_IMAGES)
+        calibration = torch.stack([train[index][0] for index in chosen])
+    student, plan = convert(teacher, group, budget, "invariant", train[0][0][None], init=init,
                             calibration=calibration, progress=not quiet)
-    return TuneInputs(student, plan, teacher, loaded.reference, images)
+    return TuneInputs(student, plan, teacher, loaded.reference, train, val)
+
+
+def _tuple(values: list[float] | None) -> tuple[float, ...] | None:
+    return tuple(values) if values is not None else None
 
 
 def _rebuild_teacher(reference: str, weights: Path) -> nn.Module:
@@ -190,16 +254,26 @@ def _require_weights(source: str, weights: Path | None) -> None:
                           fix="add --weights with the original's trained state dict")
 
 
+def teacher_line(result: TuneResult) -> str:
+    """What the teacher cost: the pass that cached it, the time a reused cache saved, or the online teacher."""
+    if result.options.teacher == "online":
+        return "teacher: online, |G| forward passes of the original per training step"
+    if result.teacher_reused:
+        return f"teacher: cached outputs reused, saving the {result.teacher_seconds:.1f} s pass that computed them"
+    return f"teacher: computed once and cached in {result.teacher_seconds:.1f} s"
+
+
 def history_table(result: TuneResult) -> Table:
     """One row per epoch: training loss, held-out loss and accuracy (or agreement) upright and transformed."""
     measure = result.final.measure
     table = Table("epoch", "train loss", "held-out loss", f"{measure} upright", f"{measure} transformed", "seconds",
+                  "images/s",
                   title=f"tuning on {result.processes} process{'es' if result.processes > 1 else ''}: "
                         f"{result.train_images} training, {result.held_out_images} held-out images")
     before = result.before
-    table.add_row("before", "", f"{before.loss:.4f}", f"{before.upright:.3f}", f"{before.transformed:.3f}", "")
+    table.add_row("before", "", f"{before.loss:.4f}", f"{before.upright:.3f}", f"{before.transformed:.3f}", "", "")
     for record in result.history:
         held = record.held_out
         table.add_row(str(record.epoch), f"{record.train_loss:.4f}", f"{held.loss:.4f}", f"{held.upright:.3f}",
-                      f"{held.transformed:.3f}", f"{record.seconds:.1f}")
+                      f"{held.transformed:.3f}", f"{record.seconds:.1f}", f"{record.images / record.seconds:,.0f}")
     return table

@@ -7,6 +7,7 @@ pixel is decoded (an untrusted file cannot make orbify allocate gigabytes).
 
 from __future__ import annotations
 
+import io
 from collections.abc import Sequence
 from pathlib import Path
 
@@ -22,24 +23,38 @@ LARGEST_IMAGE_PIXELS = 8192 * 8192
 decompression-bomb limit (about 89 million pixels), so a larger file is refused from its header."""
 # ITU-R BT.601 luma weights, the ones Pillow's "L" conversion uses (common practice).
 _LUMA = (0.299, 0.587, 0.114)
+# Pillow modes of grey images (with or without alpha, 1 to 32 bits).
+_GREY_MODES = frozenset({"1", "L", "LA", "La", "I", "I;16", "I;16B", "I;16L", "I;16N", "F"})
 
 
-def decode_image(file: Path, channels: int) -> torch.Tensor:
-    """One image file as a float32 (C, H, W) tensor in [0, 1]."""
+def decode_image(file: Path | str, channels: int | None, *, data: bytes | None = None) -> torch.Tensor:
+    """One image as a float32 (C, H, W) tensor in [0, 1]: the file ``file``, or the encoded bytes ``data`` when
+    given (then ``file`` only names them in messages, e.g. ``shard.tar:member``).
+
+    ``channels`` 1 gives grey, 3 RGB (by Pillow's conversions), None the image's own: grey for a grey image,
+    else RGB. The size guard applies to bytes exactly as to files.
+    """
     from PIL import Image, UnidentifiedImageError
 
     try:
-        with Image.open(file) as image:
+        with Image.open(io.BytesIO(data) if data is not None else file) as image:
             _require_tile_size(file, image.width, image.height)
-            image = image.convert("L" if channels == 1 else "RGB")
+            image = image.convert(_pillow_mode(image.mode, channels))
             array = np.asarray(image, dtype=np.uint8)
     except Image.DecompressionBombError as error:   # declared far beyond the limit: Pillow refuses at open
         raise _too_large(file, f"more than {LARGEST_IMAGE_PIXELS:,} pixels ({error})") from error
-    except (UnidentifiedImageError, OSError, ValueError) as error:
+    except (UnidentifiedImageError, OSError, ValueError, SyntaxError, EOFError) as error:
         raise DataError(f"The image file {str(file)!r} cannot be read ({type(error).__name__}: {error})",
                         where=str(file), fix="replace or remove the damaged file") from error
     tensor = torch.from_numpy(array.copy()).float() / 255.0
     return tensor.unsqueeze(0) if tensor.dim() == 2 else tensor.permute(2, 0, 1)
+
+
+def _pillow_mode(mode: str, channels: int | None) -> str:
+    """The Pillow mode to convert to: "L" for one channel (or a grey image kept as it is), else "RGB"."""
+    if channels is None:
+        return "L" if mode in _GREY_MODES else "RGB"
+    return "L" if channels == 1 else "RGB"
 
 
 def _require_tile_size(file: Path, width: int, height: int) -> None:
@@ -78,6 +93,12 @@ def to_nchw(array: np.ndarray, file: Path) -> torch.Tensor:
                         fix="store at least one image")
     scale = 255.0 if array.dtype == np.uint8 else 1.0
     return torch.from_numpy(np.ascontiguousarray(array)).float() / scale
+
+
+def check_image_array(array: np.ndarray, file: Path) -> None:
+    """Raise what :func:`to_nchw` raises for ``array``, converting at most one image (a memory-mapped array stays
+    on disk)."""
+    to_nchw(array[:1] if array.ndim in (3, 4) else array, file)
 
 
 def check_labels(array: np.ndarray | None, n: int, file: Path) -> torch.Tensor | None:

@@ -29,6 +29,7 @@ import numpy as np
 import torch
 
 from orbify.data.decoding import (
+    check_image_array,
     check_labels,
     decode_image,
     fit,
@@ -109,35 +110,56 @@ def read_images(path: str | Path, *, size: int | None = None, channels: int = 3,
 
 
 # -- folders -------------------------------------------------------------------------------------
-def _read_folder(folder: Path, size: int | None, channels: int, limit: int | None) -> ImageSet:
-    loose = _image_files(folder)
-    class_dirs = [d for d in sorted(folder.iterdir()) if d.is_dir() and _image_files(d)]
+@dataclass
+class FolderListing:
+    """The images of a folder in reading order: ``names`` relative to the folder (``a.png`` or ``CLASS/a.png``),
+    with ``labels`` indexing ``classes`` when the folder has one sub-folder per class (else both None)."""
+
+    names: list[str]
+    labels: list[int] | None
+    classes: list[str] | None
+
+
+def list_folder(folder: Path) -> FolderListing:
+    """The image files of ``folder`` (loose, or one sub-folder per class), sorted by name; decodes nothing.
+
+    Raises:
+        DataError: the folder holds no images, or mixes loose images with class sub-folders.
+    """
+    loose = _image_names(folder)
+    class_dirs = [d for d in sorted(folder.iterdir()) if d.is_dir() and _image_names(d)]
     if loose and class_dirs:
         raise DataError(f"The folder {str(folder)!r} mixes loose images with class sub-folders "
-                        f"({', '.join(d.name for d in class_dirs[:3])})", where=str(loose[0]),
+                        f"({', '.join(d.name for d in class_dirs[:3])})", where=str(folder / loose[0]),
                         fix="put every image into a class sub-folder, or use a folder of loose images only")
     if class_dirs:
-        files = [(f, label) for label, d in enumerate(class_dirs) for f in _image_files(d)]
-        classes: list[str] | None = [d.name for d in class_dirs]
-    elif loose:
-        files = [(f, None) for f in loose]
-        classes = None
-    else:
-        raise DataError(f"The folder {str(folder)!r} holds no images", where=str(folder),
-                        fix=f"add image files ({', '.join(IMAGE_SUFFIXES)}), directly or in one sub-folder per class")
-    files = [files[i] for i in evenly_spaced(len(files), limit)]
-    images = [fit(decode_image(f, channels), size, f) for f, _ in files]
-    _require_one_size(images, [str(f) for f, _ in files])
-    labels = torch.tensor([label for _, label in files]) if classes is not None else None
-    return ImageSet(torch.stack(images), labels, classes)
+        pairs = [(f"{d.name}/{name}", label) for label, d in enumerate(class_dirs) for name in _image_names(d)]
+        return FolderListing([name for name, _ in pairs], [label for _, label in pairs], [d.name for d in class_dirs])
+    if loose:
+        return FolderListing(loose, None, None)
+    raise DataError(f"The folder {str(folder)!r} holds no images", where=str(folder),
+                    fix=f"add image files ({', '.join(IMAGE_SUFFIXES)}), directly or in one sub-folder per class")
 
 
-def _image_files(folder: Path) -> list[Path]:
-    return sorted(f for f in folder.iterdir() if f.is_file() and f.suffix.lower() in IMAGE_SUFFIXES)
+def _read_folder(folder: Path, size: int | None, channels: int, limit: int | None) -> ImageSet:
+    listing = list_folder(folder)
+    keep = evenly_spaced(len(listing.names), limit)
+    files = [folder / listing.names[i] for i in keep]
+    images = [fit(decode_image(f, channels), size, f) for f in files]
+    _require_one_size(images, [str(f) for f in files])
+    labels = torch.tensor([listing.labels[i] for i in keep]) if listing.labels is not None else None
+    return ImageSet(torch.stack(images), labels, listing.classes)
+
+
+def _image_names(folder: Path) -> list[str]:
+    """The names of the image files directly in ``folder``, sorted."""
+    return sorted(f.name for f in folder.iterdir() if f.is_file() and f.suffix.lower() in IMAGE_SUFFIXES)
 
 
 # -- array files ---------------------------------------------------------------------------------
-def _read_npz(file: Path, size: int | None, channels: int, limit: int | None) -> ImageSet:
+def load_npz(file: Path) -> tuple[np.ndarray, torch.Tensor | None, list[str] | None]:
+    """The ``images`` array of an ``.npz`` file as stored (checked, not converted), its checked ``labels`` and its
+    ``classes`` (each None when absent). The file is read whole, with ``allow_pickle=False``."""
     try:
         with np.load(file, allow_pickle=False) as archive:
             content = {key: archive[key] for key in archive.files}
@@ -148,11 +170,17 @@ def _read_npz(file: Path, size: int | None, channels: int, limit: int | None) ->
         raise DataError(f"The array file {str(file)!r} has no 'images' array (it has: "
                         f"{', '.join(content) or 'nothing'})", where=str(file),
                         fix="store the images under the key 'images': numpy.savez(path, images=..., labels=...)")
-    images = to_nchw(content["images"], file)
-    n = images.shape[0]
-    labels = check_labels(content.get("labels"), n, file)
+    images = content["images"]
+    check_image_array(images, file)
+    labels = check_labels(content.get("labels"), images.shape[0], file)
     classes = [str(c) for c in content["classes"]] if "classes" in content else None
-    keep = evenly_spaced(n, limit)
+    return images, labels, classes
+
+
+def _read_npz(file: Path, size: int | None, channels: int, limit: int | None) -> ImageSet:
+    array, labels, classes = load_npz(file)
+    images = to_nchw(array, file)
+    keep = evenly_spaced(images.shape[0], limit)
     images = match_channels(images[keep], channels, file)
     images = torch.stack([fit(image, size, file) for image in images]) if size is not None else images
     return ImageSet(images.contiguous(), labels[keep] if labels is not None else None, classes)

@@ -8,21 +8,27 @@ Nothing but the list of samples is held in memory, so memory does not grow with 
 data set. A sample that cannot be read raises :class:`~orbify.errors.DataError` naming it.
 
 :class:`TensorTiles` serves images already in memory (the Python API's tensors), :class:`DatasetTiles`
-a user's own ``Dataset``; :func:`orbify.data.catalog.open_tiles` opens a folder, a CSV manifest, an
-array file or tar shards.
+a user's own ``Dataset``, :class:`FileTiles` image files, :class:`ArrayTiles` an array (memory-mapped
+or in memory); :func:`orbify.data.catalog.open_tiles` opens a folder, a CSV manifest, an array file
+or tar shards (:class:`orbify.data.shards.ShardTiles`). Per-sample lists are numpy arrays and
+tensors (:class:`PackedStrings` for names), which forked ``DataLoader`` workers share without
+copying, where millions of Python objects would be copied page by page as reference counts change.
 """
 
 from __future__ import annotations
 
 import copy
 import hashlib
-from collections.abc import Callable, Sequence
+import os
+from collections.abc import Callable, Iterable, Sequence
 from dataclasses import dataclass, replace
+from pathlib import Path
 
+import numpy as np
 import torch
 from torch.utils.data import Dataset
 
-from orbify.data.decoding import fit, match_channels, normalise
+from orbify.data.decoding import decode_image, fit, match_channels, normalise, to_nchw
 from orbify.errors import DataError
 
 UNLABELLED = -1
@@ -43,6 +49,11 @@ class Preparation:
     mean: tuple[float, ...] | None = None
     std: tuple[float, ...] | None = None
     augmentation: Augmentation | None = None
+
+    def __post_init__(self) -> None:
+        if self.channels not in (None, 1, 3):
+            raise DataError(f"Cannot prepare images with {self.channels} channels", where="preparation",
+                            fix="ask for 1 (grey) or 3 (RGB) channels, or None to keep the images' own")
 
     def key(self) -> str:
         """What the preparation does, as text for cache keys (the augmentation is named only by whether it is set)."""
@@ -178,3 +189,83 @@ class DatasetTiles(Tiles):
 
     def name(self, index: int) -> str:
         return f"dataset[{index}]"
+
+
+class PackedStrings:
+    """Many strings held as one utf-8 byte array and an int64 offsets array (two objects, however many strings).
+
+    Undecodable file names (bytes that are not utf-8) survive the round trip, as :func:`os.fsencode` keeps them.
+    """
+
+    def __init__(self, strings: Iterable[str]):
+        encoded = [text.encode("utf-8", "surrogateescape") for text in strings]
+        self.offsets = np.zeros(len(encoded) + 1, dtype=np.int64)
+        np.cumsum([len(b) for b in encoded], out=self.offsets[1:])
+        self.blob = np.frombuffer(b"".join(encoded), dtype=np.uint8)
+
+    def __len__(self) -> int:
+        return len(self.offsets) - 1
+
+    def __getitem__(self, index: int) -> str:
+        start, end = self.offsets[index], self.offsets[index + 1]
+        return self.blob[start:end].tobytes().decode("utf-8", "surrogateescape")
+
+
+class FileTiles(Tiles):
+    """Image files (paths in ``names``, relative to the folder ``root`` or absolute), decoded when read.
+
+    ``labels`` (N,) int64 or None, ``classes`` their names, ``validation`` (N,) bool or None, ``fingerprint`` as
+    described on :class:`Tiles`.
+    """
+
+    def __init__(self, root: Path, names: PackedStrings, *, preparation: Preparation,
+                 labels: torch.Tensor | None = None, classes: list[str] | None = None,
+                 validation: torch.Tensor | None = None, fingerprint: str | None = None):
+        super().__init__(preparation)
+        self.root, self.names = str(root), names
+        self.labels, self.classes, self.validation, self.fingerprint = labels, classes, validation, fingerprint
+
+    def __len__(self) -> int:
+        return len(self.names)
+
+    def read(self, index: int) -> tuple[torch.Tensor, int]:
+        image = decode_image(self.name(index), self.preparation.channels)
+        return image, int(self.labels[index]) if self.labels is not None else UNLABELLED
+
+    def name(self, index: int) -> str:
+        return os.path.join(self.root, self.names[index])
+
+
+class ArrayTiles(Tiles):
+    """The images ``indices`` of an array (N, H, W), (N, H, W, C) or (N, C, H, W) read from ``file``, converted one
+    at a time as :func:`~orbify.data.decoding.to_nchw` converts (8-bit values scaled to [0, 1]).
+
+    A ``memory_mapped`` array stays on disk: it is not pickled with the tiles but mapped again where they are
+    unpickled (a worker process started by spawn). ``labels`` (N,) int64 are per selected image.
+    """
+
+    def __init__(self, array: np.ndarray, file: Path, indices: np.ndarray, *, preparation: Preparation,
+                 memory_mapped: bool = False, labels: torch.Tensor | None = None, classes: list[str] | None = None,
+                 fingerprint: str | None = None):
+        super().__init__(preparation)
+        self.array, self.file, self.indices, self.memory_mapped = array, Path(file), indices, memory_mapped
+        self.labels, self.classes, self.fingerprint = labels, classes, fingerprint
+
+    def __len__(self) -> int:
+        return len(self.indices)
+
+    def read(self, index: int) -> tuple[torch.Tensor, int]:
+        if self.array is None:   # unpickled in another process: map the file again
+            self.array = np.load(self.file, mmap_mode="r", allow_pickle=False)
+        at = int(self.indices[index])
+        image = to_nchw(self.array[at:at + 1], self.file)[0]
+        return image, int(self.labels[index]) if self.labels is not None else UNLABELLED
+
+    def name(self, index: int) -> str:
+        return f"{self.file}[{int(self.indices[index])}]"
+
+    def __getstate__(self) -> dict:
+        state = self.__dict__.copy()
+        if self.memory_mapped:
+            state["array"] = None
+        return state

@@ -1,9 +1,10 @@
-"""Tuning checkpoints: written by rank 0 after every epoch, read back to resume exactly where a run stopped.
+"""Tuning checkpoints: written by rank 0 after every epoch (and every N steps), read back to resume where a run stopped.
 
-A checkpoint holds the options, the teacher fingerprint, the student, optimiser and scheduler
-states, every process's random state, and the evaluations so far. It resumes only a run with
-the same options and data; on the same number of processes it goes on bitwise as an
-uninterrupted run would have.
+A checkpoint holds the options, the run's fingerprint (teacher, data, split), the position (epochs
+done and steps done in the next one), the student, optimiser and scheduler states, the running
+loss sums of a part-done epoch, every process's random state, and the evaluations so far. It
+resumes only a run with the same options and data; on the same number of processes it goes on
+bitwise as an uninterrupted run would have, from an epoch's end or from the middle of one.
 """
 
 from __future__ import annotations
@@ -22,7 +23,7 @@ from orbify.tuning.records import EpochRecord, Evaluation, TuneResult
 from orbify.tuning.training import Training
 
 CHECKPOINT_KIND = "orbify tune checkpoint"
-CHECKPOINT_VERSION = 1
+CHECKPOINT_VERSION = 2
 
 
 def checkpoint_to_resume(path: Path | None, world: World, *, resume: bool, force: bool) -> dict | None:
@@ -62,8 +63,9 @@ def _read(path: Path) -> dict | CheckpointError:
 
 
 def restore_checkpoint(state: dict, path: Path, student: nn.Module, training: Training, world: World,
-                       result: TuneResult) -> int:
-    """Load a checkpoint's state into the student, the training state and ``result``; returns the epochs it had done.
+                       result: TuneResult) -> tuple[int, int]:
+    """Load a checkpoint's state into the student, the training state and ``result``; returns the epochs it had done
+    and the steps done in the next epoch.
 
     The random state is restored only when the checkpoint was written by as many processes
     (otherwise ``result.notes`` says so). Raises :class:`CheckpointError` for other options,
@@ -78,6 +80,7 @@ def restore_checkpoint(state: dict, path: Path, student: nn.Module, training: Tr
                               where=where, fix="resume with the converted model the run started from") from error
     training.optimiser.load_state_dict(state["optimizer"])
     training.scheduler.load_state_dict(state["scheduler"])
+    training.sums = state["sums"].clone()
     rng = state["rng"]
     if state["processes"] == world.size:
         torch.set_rng_state(rng[world.rank]["cpu"])
@@ -90,7 +93,7 @@ def restore_checkpoint(state: dict, path: Path, student: nn.Module, training: Tr
     result.history = [EpochRecord(**{**record, "held_out": Evaluation(**record["held_out"])})
                       for record in state["history"]]
     result.resumed_after = int(state["epoch"])
-    return result.resumed_after
+    return result.resumed_after, int(state["step"])
 
 
 def _check_same_run(state: dict, result: TuneResult, where: str) -> None:
@@ -108,8 +111,11 @@ def _check_same_run(state: dict, result: TuneResult, where: str) -> None:
 
 
 def save_checkpoint(path: Path | None, student: nn.Module, training: Training, world: World,
-                    result: TuneResult) -> None:
-    """Gather every process's random state and let rank 0 write the checkpoint atomically (nothing for no path)."""
+                    result: TuneResult, step: int = 0) -> None:
+    """Gather every process's random state and let rank 0 write the checkpoint atomically (nothing for no path).
+
+    ``step`` is the number of steps done in the epoch after the last complete one (0 at an epoch's end).
+    """
     if path is None:
         return
     rng = {"cpu": torch.get_rng_state()}
@@ -122,6 +128,8 @@ def save_checkpoint(path: Path | None, student: nn.Module, training: Training, w
         "kind": CHECKPOINT_KIND,
         "version": CHECKPOINT_VERSION,
         "epoch": len(result.history),
+        "step": step,
+        "sums": training.sums.clone(),
         "options": asdict(result.options),
         "processes": world.size,
         "teacher_hash": result.teacher_hash,

@@ -1,4 +1,11 @@
-"""The data of a tuning run: the images, their split into training and held-out, and the targets to learn."""
+"""The data of a tuning run: which samples train, which are evaluated, and the teacher's view of the evaluated ones.
+
+Training samples and evaluation samples are indices into :class:`~orbify.data.tiles.Tiles`. The
+evaluation set is, in this order of preference: a separate validation set (``--val``), the rows a
+manifest marks ``val``, or a held-out share of the training data drawn with the seed. At most
+``val_limit`` of its samples, evenly spaced, are evaluated; the teacher's outputs on them are
+computed once and kept in memory.
+"""
 
 from __future__ import annotations
 
@@ -6,22 +13,15 @@ import hashlib
 from dataclasses import dataclass
 
 import torch
+from torch import nn
 
+from orbify.data.images import evenly_spaced
+from orbify.data.tiles import UNLABELLED, Tiles
 from orbify.errors import DataError
-from orbify.tuning.teacher import TeacherOutputs
-
-
-def check_images(images: torch.Tensor, labels: torch.Tensor | None) -> None:
-    """Raise :class:`DataError` unless ``images`` is a float (N, C, H, W) tensor and ``labels`` None or (N,) integers."""
-    if not isinstance(images, torch.Tensor) or images.dim() != 4 or not images.is_floating_point():
-        got = f"shape {tuple(images.shape)} {images.dtype}" if isinstance(images, torch.Tensor) else type(images).__name__
-        raise DataError(f"Tuning needs float images of shape (N, C, H, W), got {got}", where="images",
-                        fix="stack the images into one float tensor (orbify.data.read_images does)")
-    if labels is None:
-        return
-    if labels.dim() != 1 or labels.shape[0] != images.shape[0] or labels.is_floating_point():
-        raise DataError(f"The labels (shape {tuple(labels.shape)}, {labels.dtype}) do not fit {images.shape[0]} images",
-                        where="labels", fix="give one integer class index per image, or no labels")
+from orbify.symmetry.groups import Group
+from orbify.tuning.distributed import World
+from orbify.tuning.samples import BadSamples, BatchPlan, batch_loader
+from orbify.tuning.teacher import VIEW_COMBINATIONS, teach
 
 
 def holdout_split(count: int, fraction: float, seed: int) -> tuple[torch.Tensor, torch.Tensor]:
@@ -35,51 +35,94 @@ def holdout_split(count: int, fraction: float, seed: int) -> tuple[torch.Tensor,
 
 
 @dataclass(frozen=True)
-class TuningData:
-    """Everything the student learns from and is measured on, on the CPU.
+class Split:
+    """Training indices into ``train``; evaluated indices into ``val`` (the same tiles or a separate set)."""
 
-    ``images`` (N, C, H, W); ``labels`` (N,) long or None; ``train`` and ``held_out`` index the
-    images; ``teacher`` holds the teacher's log-probabilities (N, classes) under the chosen view
-    combination; ``targets`` are what accuracy counts against: the labels, or else the teacher's top class.
-    """
+    train_ids: torch.Tensor
+    val: Tiles
+    val_ids: torch.Tensor
 
-    images: torch.Tensor
-    labels: torch.Tensor | None
-    train: torch.Tensor
-    held_out: torch.Tensor
+
+def split_samples(train: Tiles, val: Tiles | None, holdout_fraction: float, seed: int,
+                  val_limit: int | None) -> Split:
+    """Choose the training and evaluated samples (see the module docstring)."""
+    if val is not None:
+        train_ids, val_ids, val_tiles = torch.arange(len(train)), torch.arange(len(val)), val
+    elif train.validation is not None and bool(train.validation.any()):
+        marked = train.validation.bool()
+        train_ids, val_ids, val_tiles = torch.nonzero(~marked)[:, 0], torch.nonzero(marked)[:, 0], train
+    else:
+        (train_ids, val_ids), val_tiles = holdout_split(len(train), holdout_fraction, seed), train
+    if len(train_ids) < 2:
+        raise DataError(f"{len(train_ids)} training samples are too few", where="data",
+                        fix="give at least two training images")
+    val_ids = val_ids[evenly_spaced(len(val_ids), val_limit)]
+    return Split(train_ids, val_tiles.with_preparation(augmentation=None), val_ids)
+
+
+@dataclass(frozen=True)
+class Evaluated:
+    """The evaluated samples that could be read: their ``ids`` (sorted, into the validation tiles), the teacher's
+    log-probabilities on them, and the ``targets`` accuracy counts against (the labels, or the teacher's top class)."""
+
+    ids: torch.Tensor
     teacher: torch.Tensor
     targets: torch.Tensor
+    labelled: bool
+    teacher_accuracy: dict[str, float]
 
     @property
     def measure(self) -> str:
         """"accuracy" with labels, "agreement" (with the teacher) without."""
-        return "accuracy" if self.labels is not None else "agreement"
+        return "accuracy" if self.labelled else "agreement"
 
-    def teacher_accuracy(self, top_class: dict[str, torch.Tensor]) -> dict[str, float]:
-        """Held-out accuracy of each view combination's top class (empty without labels)."""
-        if self.labels is None:
-            return {}
-        truth = self.labels[self.held_out]
-        return {how: float((top[self.held_out] == truth).double().mean()) for how, top in top_class.items()}
-
-    def fingerprint(self) -> str:
-        """SHA-256 of the teacher outputs, the held-out indices and the targets (checkpoints carry it)."""
-        digest = hashlib.sha256()
-        for tensor in (self.teacher, self.held_out, self.targets):
-            digest.update(tensor.contiguous().numpy().tobytes())
-        return digest.hexdigest()
+    def positions(self, ids: torch.Tensor) -> torch.Tensor:
+        """Where tile indices ``ids`` sit in :attr:`ids`."""
+        return torch.searchsorted(self.ids, ids)
 
 
-def tuning_data(images: torch.Tensor, labels: torch.Tensor | None, split: tuple[torch.Tensor, torch.Tensor],
-                teacher: TeacherOutputs, view_combination: str) -> TuningData:
-    """Join the images, the ``split`` (train, held out) and the teacher's outputs; labels must index its classes.
+def evaluated_samples(model: nn.Module, group: Group, split: Split, views: str, use_labels: bool, world: World,
+                      batch_size: int, workers: int, bad: BadSamples) -> Evaluated:
+    """Run the teacher once over the evaluated samples (each process its batches) and join the results."""
+    plan = BatchPlan(split.val_ids, world, batch_size)
+    parts: list[tuple[torch.Tensor, torch.Tensor, torch.Tensor, torch.Tensor]] = []
+    for batch in batch_loader(split.val, plan, workers, seed=0):
+        bad.check(batch)
+        if not len(batch):
+            continue
+        taught = teach(model, group, batch.images.to(world.device), views)
+        tops = torch.stack([taught.top_class[how].cpu() for how in VIEW_COMBINATIONS], 1)
+        parts.append((batch.indices, taught.log_probabilities.cpu(), tops, batch.labels))
+    gathered = [part for shares in world.gather_objects(parts) for part in shares]
+    if not gathered:
+        raise DataError("No evaluated sample could be read", where="validation data",
+                        fix="check the validation images, or give other ones")
+    ids, teacher, tops, labels = (torch.cat(column) for column in zip(*gathered))
+    order = ids.argsort()
+    ids, teacher, tops, labels = ids[order], teacher[order], tops[order], labels[order]
+    labelled = use_labels and bool((labels != UNLABELLED).all())
+    require_labels_in_range(labels, teacher.shape[1], ids, split.val)
+    accuracy = ({how: float((tops[:, i] == labels).double().mean()) for i, how in enumerate(VIEW_COMBINATIONS)}
+                if labelled else {})
+    targets = labels if labelled else tops[:, VIEW_COMBINATIONS.index(views)]
+    return Evaluated(ids, teacher, targets, labelled, accuracy)
 
-    Raises :class:`DataError` for a label outside 0 … classes − 1.
-    """
-    classes = teacher.log_probabilities.shape[1]
-    if labels is not None and (labels.min() < 0 or labels.max() >= classes):
-        raise DataError(f"Labels run from {int(labels.min())} to {int(labels.max())}, but the original "
-                        f"model scores {classes} classes", where="labels",
+
+def require_labels_in_range(labels: torch.Tensor, classes: int, ids: torch.Tensor, tiles: Tiles) -> None:
+    """Raise :class:`DataError` naming the first sample whose label is not a class of the model (−1 means none)."""
+    wrong = torch.nonzero((labels < UNLABELLED) | (labels >= classes))
+    if len(wrong):
+        first = int(wrong[0, 0])
+        raise DataError(f"The sample {tiles.name(int(ids[first]))!r} has the label {int(labels[first])}, but the "
+                        f"original model scores {classes} classes", where=tiles.name(int(ids[first])),
                         fix="give labels that index the model's classes (0 to classes − 1)")
-    targets = labels if labels is not None else teacher.top_class[view_combination]
-    return TuningData(images, labels, *split, teacher.log_probabilities, targets)
+
+
+def run_fingerprint(teacher_digest: str, group: str, views: str, train: Tiles, split: Split,
+                    use_labels: bool) -> str:
+    """SHA-256 of what a checkpoint may only resume with: the teacher, the data and the split."""
+    digest = hashlib.sha256(f"{teacher_digest}|{group}|{views}|{train.cache_key()}|{split.val.cache_key()}|"
+                            f"{use_labels}".encode())
+    for tensor in (split.train_ids, split.val_ids):
+        digest.update(tensor.numpy().tobytes())
+    return digest.hexdigest()

@@ -1,6 +1,9 @@
-"""Progress of a tuning run: bars for epochs and steps, one printed line per epoch (rank 0 only)."""
+"""Progress of a tuning run: bars for epochs and steps (with images per second, loss and time left), one printed
+line per epoch (rank 0 only)."""
 
 from __future__ import annotations
+
+import time
 
 from rich.console import Console
 
@@ -14,6 +17,8 @@ class Display:
     def __init__(self, enabled: bool, epochs: int, steps: int, console: Console | None = None):
         self.epochs = epochs
         self.steps = steps
+        self.started = time.perf_counter()
+        self.images = 0
         self.bars = ProgressBars(enabled, console=console, time_remaining=True, transient=True)
 
     def __enter__(self) -> "Display":
@@ -25,20 +30,27 @@ class Display:
     def __exit__(self, *exc) -> None:
         self.bars.__exit__(*exc)
 
-    def teacher(self, accuracy: dict[str, float], chosen: str, before: Evaluation, done: int) -> None:
+    def teacher(self, accuracy: dict[str, float], chosen: str, before: Evaluation, done: int, step: int = 0) -> None:
         """Say how good each teacher is (with labels), where the student starts, and where a resumed run goes on."""
         if accuracy:
             scores = ", ".join(f"{'[bold]' + how + '[/]' if how == chosen else how} {value:.3f}"
                                for how, value in accuracy.items())
             self.bars.print(f"teacher accuracy on held-out images by view combination: {scores}")
         self.bars.print(f"before tuning: {_evaluation(before)}")
-        if done:
-            self.bars.print(f"resuming after epoch {done}")
+        if done or step:
+            self.bars.print(f"resuming after epoch {done}" + (f", step {step}" if step else ""))
             self.bars.set_completed(self.epoch_bar, done)
+            self.bars.set_completed(self.step_bar, step)
 
-    def step(self, loss: float) -> None:
-        """One training step done, with its loss."""
-        self.bars.advance(self.step_bar, f"loss {loss:.4f}")
+    def step(self, loss: float, images: int) -> None:
+        """One training step done, with its loss and the images every process read in it."""
+        self.images += images
+        rate = self.images / max(time.perf_counter() - self.started, 1e-9)
+        self.bars.advance(self.step_bar, f"{rate:,.0f} images/s, loss {loss:.4f}")
+
+    def note(self, text: str) -> None:
+        """Print one line above the bars."""
+        self.bars.print(text)
 
     def epoch_done(self, record: EpochRecord) -> None:
         """An epoch done: advance the epoch bar, restart the step bar, print the epoch's line."""
@@ -46,6 +58,7 @@ class Display:
         self.bars.advance(self.epoch_bar, _evaluation(record.held_out, short=True))
         self.bars.restart(self.step_bar, self.steps)
         self.bars.print(line)
+        self.started, self.images = time.perf_counter(), 0
 
 
 def _evaluation(evaluation: Evaluation, short: bool = False) -> str:

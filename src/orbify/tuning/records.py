@@ -24,13 +24,15 @@ class Evaluation:
 
 @dataclass
 class EpochRecord:
-    """One epoch: mean training loss, learning rate at its end, held-out evaluation, wall time."""
+    """One epoch: mean training loss, learning rate at its end, held-out evaluation, wall time, and the training images
+    every process together read in it (their rate is ``images / seconds``, evaluation included)."""
 
     epoch: int
     train_loss: float
     learning_rate: float
     held_out: Evaluation
     seconds: float
+    images: int = 0
 
 
 @dataclass
@@ -39,10 +41,12 @@ class TuneResult:
 
     ``before`` evaluates the student after batch-norm recalibration, before the first step.
     ``teacher_accuracy`` is the held-out accuracy of the teacher under every view combination
-    (empty without labels), to judge the choice. ``teacher_hash`` fingerprints the cached teacher
-    outputs and the split; checkpoints carry it. ``rank`` is this process's rank (rank 0 writes
-    files). ``resumed_after`` is the epoch a resumed run
-    started after (None for a fresh run).
+    (empty without labels), to judge the choice. ``teacher_hash`` fingerprints the original's
+    weights, the data and the split; checkpoints carry it. ``rank`` is this process's rank (rank 0
+    writes files). ``resumed_after`` is the epoch a resumed run started after (None for a fresh
+    run). ``skipped`` names the samples left out as unreadable (with ``skip_unreadable``).
+    ``teacher_seconds`` is what the teacher pass over the training data took (by the earlier run
+    whose cache was reused, when ``teacher_reused``; 0 when the teacher runs online).
     """
 
     options: TuneOptions
@@ -56,6 +60,9 @@ class TuneResult:
     rank: int = 0
     resumed_after: int | None = None
     notes: list[str] = field(default_factory=list)
+    skipped: list[str] = field(default_factory=list)
+    teacher_seconds: float = 0.0
+    teacher_reused: bool = False
 
     @property
     def final(self) -> Evaluation:

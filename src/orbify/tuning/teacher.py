@@ -15,7 +15,8 @@ the |G| logit vectors into one class distribution (docs/design.md §13):
 
 Over an exact group (c2, c4, d4, ...) every rule gives an invariant model: moving x by h only
 permutes its views. :class:`GroupAveraged` is that model (test-time averaging);
-:func:`teacher_outputs` runs it once over a data set and keeps one distribution per sample.
+:func:`teach` runs the teacher on one batch (once per sample into a cache on disk, or on every
+training step when the images are augmented).
 """
 
 from __future__ import annotations
@@ -30,7 +31,6 @@ from orbify.common.modes import module_mode
 from orbify.common.options import check_choice
 from orbify.errors import InputShapeError
 from orbify.symmetry.groups import Group, parse_group
-from orbify.tuning.distributed import World
 
 VIEW_COMBINATIONS = ("probability", "logit", "most-confident")
 
@@ -76,46 +76,19 @@ class GroupAveraged(nn.Module):
 
 
 @dataclass
-class TeacherOutputs:
-    """The teacher's class distribution for every sample, computed once.
-
-    ``log_probabilities`` is (samples, classes) for the chosen combination. ``top_class`` holds the
-    predicted class of every combination, (samples,) each, so that the choice can be judged
-    against labels at no extra cost.
-    """
+class TeacherBatch:
+    """The teacher on one batch: ``log_probabilities`` (batch, classes) under the chosen combination, and the
+    predicted class of every combination (``top_class``, (batch,) each), so that the choice can be judged."""
 
     log_probabilities: torch.Tensor
     top_class: dict[str, torch.Tensor]
 
 
 @torch.no_grad()
-def teacher_outputs(model: nn.Module, group: Group, images: torch.Tensor, views: str, world: World,
-                    batch_size: int) -> TeacherOutputs:
-    """Run the original ``model`` over the |G| views of every image once, sharing the batches among ``world``.
-
-    ``model`` is evaluated in eval mode (its mode is restored afterwards) on ``world.device``.
-    Every process returns the same result on the CPU.
-    """
+def teach(model: nn.Module, group: Group, images: torch.Tensor, views: str) -> TeacherBatch:
+    """Run the original ``model`` (in eval mode; its mode is restored) over the |G| views of a batch, in float32."""
     check_choice("view combination", views, VIEW_COMBINATIONS)
-    chosen: list[torch.Tensor] = []
-    tops: dict[str, list[torch.Tensor]] = {how: [] for how in VIEW_COMBINATIONS}
     with module_mode(model, training=False):
-        for index in world.my_batches(len(images), batch_size):
-            logits = view_logits(model, group, images[index].to(world.device)).float()
-            for how in VIEW_COMBINATIONS:
-                combined = combine_views(logits, how)
-                tops[how].append(combined.argmax(-1).cpu())
-                if how == views:
-                    chosen.append(combined.cpu())
-    count = len(images)
-    rows = torch.cat(chosen) if chosen else torch.empty(0, 0)
-    classes = int(world.from_main(rows.shape[1] if world.is_main else None))
-    rows = rows.reshape(-1, classes)
-    return TeacherOutputs(
-        log_probabilities=world.gather_rows(rows, count, batch_size),
-        top_class={how: world.gather_rows(_cat_long(top), count, batch_size) for how, top in tops.items()},
-    )
-
-
-def _cat_long(parts: list[torch.Tensor]) -> torch.Tensor:
-    return torch.cat(parts) if parts else torch.empty(0, dtype=torch.long)
+        logits = view_logits(model, group, images).float()
+    combined = {how: combine_views(logits, how) for how in VIEW_COMBINATIONS}
+    return TeacherBatch(combined[views], {how: rows.argmax(-1) for how, rows in combined.items()})

@@ -1,46 +1,68 @@
-"""The steps of tuning: batch-norm recalibration, one training epoch, and the held-out evaluation."""
+"""The steps of tuning: batch-norm recalibration, one training epoch, and the evaluation (docs/design.md §13).
+
+Every pass streams its samples through a ``DataLoader`` (:mod:`orbify.tuning.samples`). An epoch
+can start part-way (a resumed checkpoint): it skips the batches already done, and because each
+sample's augmentation depends only on (seed, epoch, sample), it then goes on exactly as an
+uninterrupted epoch would have.
+"""
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+import contextlib
+from collections.abc import Callable
+from dataclasses import dataclass, field
 
 import torch
 import torch.nn.functional as F
 from torch import nn
 from torch.nn.parallel import DistributedDataParallel
-from torch.utils.data import DistributedSampler
 
 from orbify.common.modes import module_mode
+from orbify.data.tiles import UNLABELLED, Tiles
+from orbify.errors import DataError
 from orbify.symmetry.groups import Group
 from orbify.transfer.recalibrate import recalibrate_batch_norm
-from orbify.tuning.dataset import TuningData
-from orbify.tuning.display import Display
+from orbify.tuning.dataset import Evaluated
 from orbify.tuning.distributed import World, fixed_batches
-from orbify.tuning.options import TuneOptions
+from orbify.tuning.options import RunSettings, TuneOptions
 from orbify.tuning.records import Evaluation
+from orbify.tuning.samples import BadSamples, Batch, BatchPlan, batch_loader
 
 RECALIBRATION_IMAGES = 4096
 """Batch-norm statistics are re-estimated on at most this many training images, evenly spread (every process alike)."""
 
+TeacherRows = Callable[[Batch, torch.Tensor], torch.Tensor]
+"""The teacher's log-probabilities for a batch (its tile indices, and its images on the computing device)."""
 
-def recalibrate_student(student: nn.Module, data: TuningData, world: World, batch_size: int) -> None:
+
+def recalibrate_student(student: nn.Module, tiles: Tiles, train_ids: torch.Tensor, world: World,
+                        settings: RunSettings, batch_size: int, bad: BadSamples) -> None:
     """Batch-norm statistics from at most RECALIBRATION_IMAGES evenly spread training images (alike on every process)."""
-    count = min(len(data.train), RECALIBRATION_IMAGES)
-    chosen = data.train[torch.linspace(0, len(data.train) - 1, count).long()]
-    recalibrate_batch_norm(student, (data.images[chosen[batch]].to(world.device)
-                                     for batch in fixed_batches(count, batch_size)))
+    count = min(len(train_ids), RECALIBRATION_IMAGES)
+    chosen = train_ids[torch.linspace(0, len(train_ids) - 1, count).long()]
+    alone = World(0, 1, world.device)
+    loader = batch_loader(tiles.with_preparation(augmentation=None), BatchPlan(chosen, alone, batch_size),
+                          settings.workers, seed=0)
+
+    def images():
+        for batch in loader:
+            bad.check(batch)
+            if len(batch) > 1:
+                yield batch.images.to(world.device)
+
+    recalibrate_batch_norm(student, images())
 
 
 @dataclass
 class Training:
-    """The moving parts of training: the model stepped (``DistributedDataParallel`` over several processes),
-    the AdamW optimiser, the learning-rate scheduler, the sampler drawing each process's share, and steps per epoch."""
+    """The moving parts of training: the model stepped (``DistributedDataParallel`` over several processes), the
+    AdamW optimiser, the learning-rate scheduler, steps per epoch and the running loss sums of the current epoch."""
 
     model: nn.Module
     optimiser: torch.optim.Optimizer
     scheduler: torch.optim.lr_scheduler.LRScheduler
-    sampler: DistributedSampler
     steps: int
+    sums: torch.Tensor = field(default_factory=lambda: torch.zeros(2, dtype=torch.float64))
 
     @classmethod
     def start(cls, student: nn.Module, options: TuneOptions, world: World, train_images: int) -> "Training":
@@ -48,37 +70,70 @@ class Training:
         model = student if world.size == 1 else DistributedDataParallel(
             student, device_ids=[world.device] if world.device.type == "cuda" else None)
         optimiser = torch.optim.AdamW(student.parameters(), lr=options.lr, weight_decay=options.weight_decay)
-        sampler = DistributedSampler(range(train_images), num_replicas=world.size, rank=world.rank, shuffle=True,
-                                     seed=options.seed)
-        steps = len(fixed_batches(sampler.num_samples, options.batch_size))
-        return cls(model, optimiser, _scheduler(optimiser, options, steps * options.epochs), sampler, steps)
+        share = -(-train_images // world.size)        # DistributedSampler pads every share to this
+        steps = len(fixed_batches(share, options.batch_size))
+        return cls(model, optimiser, _scheduler(optimiser, options, steps * options.epochs), steps)
 
-    def epoch(self, epoch: int, data: TuningData, options: TuneOptions, world: World, display: Display) -> float:
-        """Train one epoch (0-based ``epoch``) on this process's share; returns the mean loss over every process."""
-        self.sampler.set_epoch(epoch)
-        device = world.device
-        mine = torch.tensor(list(self.sampler), dtype=torch.long)
+    def epoch(self, epoch: int, first_step: int, tiles: Tiles, train_ids: torch.Tensor, teacher: TeacherRows,
+              options: TuneOptions, settings: RunSettings, world: World, bad: BadSamples,
+              after_step: Callable[[int, float, int], None]) -> float:
+        """Train epoch ``epoch`` (0-based) from step ``first_step``; returns the mean loss over every process.
+
+        ``after_step(step, loss, images)`` is called after each step (1-based step within the epoch).
+        """
+        if first_step == 0:
+            self.sums.zero_()
+        plan = BatchPlan(train_ids, world, options.batch_size, epoch, shuffle=True, seed=options.seed,
+                         skip=first_step)
+        loader = batch_loader(tiles, plan, settings.workers, options.seed, pin_memory=world.device.type == "cuda")
         self.model.train()
-        total = torch.zeros(2, dtype=torch.float64)
-        for batch in fixed_batches(len(mine), options.batch_size):
-            index = data.train[mine[batch]]
-            log_probabilities = self.model(data.images[index].to(device)).log_softmax(-1)
-            loss = F.kl_div(log_probabilities, data.teacher[index].to(device), log_target=True, reduction="batchmean")
-            if data.labels is not None and options.label_weight > 0:
-                loss = loss + options.label_weight * F.nll_loss(log_probabilities, data.labels[index].to(device))
-            self.optimiser.zero_grad(set_to_none=True)
-            loss.backward()
-            self.optimiser.step()
-            self.scheduler.step()
-            total += torch.tensor([float(loss.detach()) * len(index), len(index)], dtype=torch.float64)
-            display.step(float(loss.detach()))
-        summed = world.sum(total)
+        for step, batch in enumerate(loader, start=first_step + 1):
+            bad.check(batch)
+            if len(batch) < 2:
+                self._skip_step(world, step)
+                continue
+            loss = self._step(batch, teacher, options, settings, world)
+            self.sums += torch.tensor([loss * len(batch), len(batch)], dtype=torch.float64)
+            after_step(step, loss, len(batch))
+        summed = world.sum(self.sums)
         return float(summed[0] / summed[1])
+
+    def _step(self, batch: Batch, teacher: TeacherRows, options: TuneOptions, settings: RunSettings,
+              world: World) -> float:
+        """One optimiser step on ``batch``; returns its loss."""
+        images = batch.images.to(world.device, non_blocking=True)
+        with autocast(settings, world):
+            targets = teacher(batch, images).to(world.device, torch.float32)
+            log_probabilities = self.model(images).float().log_softmax(-1)
+        loss = F.kl_div(log_probabilities, targets, log_target=True, reduction="batchmean")
+        labelled = batch.labels != UNLABELLED
+        if options.use_labels and options.label_weight > 0 and bool(labelled.any()):
+            labels = batch.labels[labelled].to(world.device)
+            loss = loss + options.label_weight * F.nll_loss(log_probabilities[labelled.to(world.device)], labels)
+        self.optimiser.zero_grad(set_to_none=True)
+        loss.backward()
+        self.optimiser.step()
+        self.scheduler.step()
+        return float(loss.detach())
+
+    def _skip_step(self, world: World, step: int) -> None:
+        """A batch with fewer than two readable samples: alone, skip the step; with other processes, stop."""
+        if world.size > 1:
+            raise DataError(f"Step {step}: fewer than two samples of this process's batch could be read",
+                            fix="remove the unreadable samples from the data")
+        self.scheduler.step()
 
     @property
     def learning_rate(self) -> float:
         """The learning rate after the last step."""
         return self.scheduler.get_last_lr()[0]
+
+
+def autocast(settings: RunSettings, world: World) -> contextlib.AbstractContextManager:
+    """bfloat16 autocast on a GPU when the precision asks for it; nothing on the CPU."""
+    if world.device.type == "cuda" and settings.precision in ("auto", "bf16"):
+        return torch.autocast("cuda", dtype=torch.bfloat16)
+    return contextlib.nullcontext()
 
 
 def _scheduler(optimiser: torch.optim.Optimizer, options: TuneOptions, total_steps: int):
@@ -90,28 +145,31 @@ def _scheduler(optimiser: torch.optim.Optimizer, options: TuneOptions, total_ste
 
 
 @torch.no_grad()
-def evaluate(student: nn.Module, data: TuningData, group: Group, world: World, batch_size: int) -> Evaluation:
-    """Held-out loss and accuracy (or agreement), upright and over the other group elements, summed over every process.
-
-    ``student`` runs in eval mode; its mode is restored afterwards.
-    """
+def evaluate(student: nn.Module, val: Tiles, evaluated: Evaluated, group: Group, world: World,
+             settings: RunSettings, batch_size: int, bad: BadSamples) -> Evaluation:
+    """Loss and accuracy (or agreement) on the evaluated samples, upright and moved by the other group elements,
+    summed over every process. ``student`` runs in eval mode; its mode is restored afterwards."""
     device = world.device
-    sums = torch.zeros(4, dtype=torch.float64)   # loss, correct upright, correct transformed, images
+    sums = torch.zeros(4, dtype=torch.float64)   # loss, correct upright, correct moved, images
+    loader = batch_loader(val, BatchPlan(evaluated.ids, world, batch_size), settings.workers, seed=0)
     with module_mode(student, training=False):
-        for batch in world.my_batches(len(data.held_out), batch_size):
-            index = data.held_out[batch]
-            images, targets = data.images[index].to(device), data.targets[index].to(device)
+        for batch in loader:
+            bad.check(batch)
+            if not len(batch):
+                continue
+            where = evaluated.positions(batch.indices)
+            images, targets = batch.images.to(device), evaluated.targets[where].to(device)
             for g in range(group.order):
-                log_probabilities = student(group.act_grid(g, images)).log_softmax(-1)
+                log_probabilities = student(group.act_grid(g, images)).float().log_softmax(-1)
                 correct = float((log_probabilities.argmax(-1) == targets).sum())
                 if g == 0:
-                    sums[0] += float(F.kl_div(log_probabilities, data.teacher[index].to(device), log_target=True,
-                                              reduction="sum"))
+                    sums[0] += float(F.kl_div(log_probabilities, evaluated.teacher[where].to(device),
+                                              log_target=True, reduction="sum"))
                     sums[1] += correct
                 else:
                     sums[2] += correct
-            sums[3] += len(index)
-    loss, upright, transformed, count = world.sum(sums).tolist()
+            sums[3] += len(batch)
+    loss, upright, moved, count = world.sum(sums).tolist()
     others = group.order - 1
-    return Evaluation(loss / count, upright / count, transformed / (count * others) if others else upright / count,
-                      data.measure)
+    return Evaluation(loss / count, upright / count, moved / (count * others) if others else upright / count,
+                      evaluated.measure)
