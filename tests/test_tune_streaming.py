@@ -207,3 +207,22 @@ def test_memory_does_not_grow_with_the_number_of_images(tmp_path):
         peaks[count] = int(finished.stdout.split()[-1]) / 1024      # ru_maxrss is in kB on Linux
     held_in_memory = 1350 * side * side * 4 / 2**20
     assert peaks[1500] - peaks[150] < held_in_memory / 3, (peaks, held_in_memory)
+
+
+def test_the_command_takes_a_manifest_with_a_validation_split(tmp_path):
+    _png_folder(tmp_path / "tiles", 30)
+    rows = ["path,label,split"] + [f"tiles/tile{i:05d}.png,{i % 3},{'val' if i % 5 == 0 else 'train'}"
+                                   for i in range(30)]
+    (tmp_path / "list.csv").write_text("\n".join(rows) + "\n")
+    torch.save(tiny_original().state_dict(), tmp_path / "original.pt")
+    out = tmp_path / "tuned.orb"
+    result = _cli("tune", "test_tune:tiny_original", "--weights", tmp_path / "original.pt", "--data",
+                  tmp_path / "list.csv", "--epochs", "1", "--batch-size", "8", "--workers", "0",
+                  "--augment", "light", "--teacher", "online", "-o", out)
+    assert result.exit_code == 0, result.output
+    flat = " ".join(result.output.split())
+    assert "24 training, 6 held-out images" in flat and "teacher: online" in flat
+    assert out.is_file() and not (tmp_path / "tuned.orb.teacher").exists()
+    refused = _cli("tune", "test_tune:tiny_original", "--weights", tmp_path / "original.pt", "--data",
+                   tmp_path / "list.csv", "--augment", "light", "-o", tmp_path / "again.orb")
+    assert refused.exit_code == 2 and "cached teacher cannot serve augmented images" in " ".join(refused.output.split())

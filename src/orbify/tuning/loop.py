@@ -20,6 +20,7 @@ from __future__ import annotations
 import tempfile
 import time
 from collections.abc import Callable
+from dataclasses import replace
 from pathlib import Path
 
 import torch
@@ -97,7 +98,8 @@ def tune(student: nn.Module, teacher_model: nn.Module, group: str | Group, image
         progress: show rich progress bars (rank 0 only).
         distributed: "auto" (join torchrun's process group when launched by it), True or False.
         device: where to compute; None = ``cuda:LOCAL_RANK`` where CUDA exists, else the CPU.
-        workers, skip_unreadable, precision, teacher_cache: how the run is computed (:class:`RunSettings`).
+        workers, skip_unreadable, precision, teacher_cache: how the run is computed (:class:`RunSettings`);
+            ``workers`` defaults to none for a tensor (already in memory).
         on_epoch_end: called with each epoch's record after its checkpoint is written.
 
     Raises:
@@ -124,6 +126,8 @@ def tune(student: nn.Module, teacher_model: nn.Module, group: str | Group, image
                            Path(teacher_cache) if teacher_cache is not None else None, val_limit)
     group = parse_group(group)
     train = _augmented(as_tiles(images, labels, "images"), options.augment, group)
+    if workers is None and isinstance(train, TensorTiles):
+        settings = replace(settings, workers=0)      # images already in memory: nothing to decode in parallel
     validation = as_tiles(val, val_labels, "val") if val is not None else None
     if resume and checkpoint_path is None:
         raise OptionError("Resuming needs a checkpoint path", where="option resume",
