@@ -4,6 +4,11 @@ Every error path must exit non-zero with one paragraph and no traceback, write n
 input files byte-for-byte unchanged (hashed before and after with orbify.common.safe_io.sha256_file).
 """
 
+import re
+import subprocess
+import sys
+from pathlib import Path
+
 import numpy as np
 import pytest
 import torch
@@ -172,6 +177,23 @@ def test_help_has_examples(command):
     code, output = run(command, "--help")
     assert code == 0, output
     assert "Examples" in output and f"orbify {command}" in output
+
+
+JOB_ORDER = ["convert", "check", "tune", "export", "sizes", "recipes", "summary", "diff", "demo"]
+
+
+@pytest.mark.parametrize("launcher", ["console script", "python -m"])
+def test_help_lists_the_commands_in_the_order_of_the_job(launcher):
+    # run as a user does: the installed console script, or the module, in a fresh process
+    script = Path(sys.executable).with_name("orbify")
+    command = [str(script), "--help"] if launcher == "console script" else [sys.executable, "-m", "orbify.cli",
+                                                                             "--help"]
+    if launcher == "console script":
+        assert script.is_file(), f"the console script {script} is not installed"
+    done = subprocess.run(command, capture_output=True, text=True, timeout=120, env={"COLUMNS": "120", "PATH": ""})
+    assert done.returncode == 0, done.stderr
+    listed = [match.group(1) for match in re.finditer(r"^│ (\w+)\s{2,}", done.stdout, re.MULTILINE)]
+    assert listed == JOB_ORDER, done.stdout
 
 
 def test_convert_help_lists_every_option():

@@ -15,8 +15,8 @@ console = Console()
 errors = Console(stderr=True)
 _state = {"debug": False}
 
-#: The order ``orbify --help`` lists the commands in (not the order their modules happen to be imported).
-COMMAND_ORDER = ("sizes", "convert", "demo", "export", "check", "summary", "diff", "tune", "recipes")
+#: The order ``orbify --help`` lists the commands in: the job (convert, check, tune, export), then the helpers.
+COMMAND_ORDER = ("convert", "check", "tune", "export", "sizes", "recipes", "summary", "diff", "demo")
 
 
 class _OrbifyGroup(TyperGroup):
