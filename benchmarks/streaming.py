@@ -4,8 +4,9 @@ Three measurements on generated PNG tiles (a folder written first; smooth random
 textured background, procedurally drawn):
 
 - **memory**: the peak resident memory of ``orbify tune`` (the command, in a fresh process; the
-  main process and its DataLoader workers summed, sampled every 0.1 s from /proc) on ``--tiles``
-  tiles and on a tenth of them;
+  proportional set sizes of the main process and its DataLoader workers summed, sampled every
+  0.1 s from /proc, so pages the forked workers share are counted once) on ``--tiles`` tiles and
+  on a tenth of them;
 - **speed**: images per second of one epoch of ``orbify.tune`` with a cached teacher (the cache
   made beforehand), against a plain PyTorch fine-tuning loop of the original (cross-entropy,
   AdamW) reading the same tiles with the same DataLoader settings, measured side by side in one
@@ -71,14 +72,19 @@ def original_model(name: str, side: int) -> torch.nn.Module:
 
 
 # -- memory ----------------------------------------------------------------------------------------
-def tree_rss(pid: int) -> int:
-    """Resident bytes of a process and all its descendants (Linux /proc)."""
+def tree_memory(pid: int) -> int:
+    """Proportional resident bytes (PSS) of a process and all its descendants (Linux /proc).
+
+    PSS divides each shared page among the processes sharing it, so DataLoader workers forked from
+    the main process do not count the pages they share with it (and each other) several times, as a
+    sum of RSS would.
+    """
     total, stack = 0, [pid]
     while stack:
         current = stack.pop()
         try:
-            status = Path(f"/proc/{current}/status").read_text()
-            total += int(next(line.split()[1] for line in status.splitlines() if line.startswith("VmRSS"))) * 1024
+            rollup = Path(f"/proc/{current}/smaps_rollup").read_text()
+            total += int(next(line.split()[1] for line in rollup.splitlines() if line.startswith("Pss:"))) * 1024
             for task in Path(f"/proc/{current}/task").iterdir():
                 stack += [int(child) for child in (task / "children").read_text().split()]
         except (OSError, StopIteration, ValueError):
@@ -87,14 +93,14 @@ def tree_rss(pid: int) -> int:
 
 
 def peak_memory_of(command: list[str]) -> tuple[float, float]:
-    """Run ``command``; return (peak summed RSS in GB, wall seconds)."""
+    """Run ``command``; return (peak summed PSS in GB, wall seconds)."""
     started = time.perf_counter()
     process = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.STDOUT, text=True)
     peak = [0]
 
     def sample():
         while process.poll() is None:
-            peak[0] = max(peak[0], tree_rss(process.pid))
+            peak[0] = max(peak[0], tree_memory(process.pid))
             time.sleep(0.1)
 
     sampler = threading.Thread(target=sample, daemon=True)
@@ -190,7 +196,7 @@ def main(
 
 
 def report_memory(rows: list[tuple[int, float, float]]) -> None:
-    table = harness.markdown_table("tiles", "peak RSS, process and workers (GB)", "wall (s)")
+    table = harness.markdown_table("tiles", "peak memory, process and workers (PSS, GB)", "wall (s)")
     for count, peak, seconds in rows:
         table.add_row(f"{count:,}", f"{peak:.2f}", f"{seconds:.0f}")
     harness.console.print("\n### Peak memory of `orbify tune`\n")
