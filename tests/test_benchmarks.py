@@ -1,29 +1,73 @@
 """The benchmark scripts' ``--quick`` modes run and print complete tables.
 
 Timing targets are judged by the scripts themselves (benchmarks/README.md), never here: these tests
-only keep the scripts working and check the figures that do not depend on the machine.
+only keep the scripts working and check the figures that do not depend on the machine. Each script runs
+in this test process (imported as a module, its ``main`` called with ``--quick``, its standard output
+captured), which spares an interpreter start and the imports per script; conversion.py still starts the
+fresh processes it measures memory in.
 """
 
 from __future__ import annotations
 
-import subprocess
+import importlib.util
+import json
 import sys
 from pathlib import Path
 
 import pytest
 import torch
+import torchvision
+import typer
+
+from orbify import parse_group
+from orbify.experiments.digits import load_digit_splits
+from orbify.tuning.teacher import VIEW_COMBINATIONS
 
 BENCHMARKS = Path(__file__).resolve().parent.parent / "benchmarks"
 
 pytestmark = pytest.mark.slow
 
 
-def run_quick(script: str) -> str:
-    """Run ``benchmarks/<script> --quick`` with this interpreter and return its standard output."""
-    done = subprocess.run([sys.executable, str(BENCHMARKS / script), "--quick"], capture_output=True, text=True,
-                          timeout=900, check=False)
-    assert done.returncode == 0, done.stderr[-3000:]
-    return done.stdout
+def load_script(name: str):
+    """Import ``benchmarks/<name>.py`` as a fresh module (run_quick puts the folder on ``sys.path`` for the scripts'
+    ``import harness``)."""
+    spec = importlib.util.spec_from_file_location(f"benchmark_{name}", BENCHMARKS / f"{name}.py")
+    module = importlib.util.module_from_spec(spec)
+    sys.modules[spec.name] = module        # dataclasses look their module up there
+    spec.loader.exec_module(module)
+    return module
+
+
+@pytest.fixture
+def run_quick(capsys, monkeypatch):
+    """``run_quick(script, *options)``: run ``benchmarks/<script> --quick *options`` in this process as its command
+    line would (typer or argparse) and return its standard output.
+
+    The scripts pin torch to one thread here, as every test process does (tests/conftest.py), instead of their
+    two: two threads in each of the suite's two workers oversubscribe two cores (measured on a busy 2-core
+    machine: calibrated_digits.py --quick took 254 s of CPU with two threads, 18 s with one). The thread
+    count is restored afterwards."""
+    threads = torch.get_num_threads()
+    monkeypatch.syspath_prepend(str(BENCHMARKS))
+    harness = importlib.import_module("harness")     # the module the scripts' ``import harness`` finds
+    pin = harness.fix_threads
+    monkeypatch.setattr(harness, "fix_threads", lambda threads=1: pin(1))
+
+    def run(script: str, *options: str) -> str:
+        module = load_script(Path(script).stem)
+        capsys.readouterr()
+        arguments = ["--quick", *options]
+        if script == "finer_rotations.py":            # argparse reads sys.argv
+            monkeypatch.setattr(sys, "argv", [script, *arguments])
+            module.main()
+        else:                                        # typer.run(main), without exiting
+            app = typer.Typer(add_completion=False)
+            app.command()(module.main)
+            typer.main.get_command(app).main(arguments, prog_name=script, standalone_mode=False)
+        return capsys.readouterr().out
+
+    yield run
+    torch.set_num_threads(threads)
 
 
 def rows(output: str, first_cell: str) -> list[list[str]]:
@@ -41,18 +85,19 @@ def leading_number(cell: str) -> float:
     return float(cell.split()[0].replace(",", ""))
 
 
-def test_checkpoint_size_quick_and_the_header():
+def test_checkpoint_size_quick_and_the_header(run_quick):
     output = run_quick("checkpoint_size.py")
-    assert rows(output, "torch threads")[0][1].startswith("2 ")
+    assert rows(output, "torch threads")[0][1].startswith("1 ")   # pinned by run_quick
     assert int(rows(output, "cores (nproc)")[0][1]) >= 1
     assert rows(output, "torch")[0][1] == torch.__version__
     (row,) = rows(output, "resnet18")
     _, group, original_params, converted_params, original_mb, file_mb, ratio, baked_mb = row
     assert group == "d4"
-    # torchvision's resnet18 has 11,689,512 parameters (torchvision model documentation; number from memory)
-    assert original_params == "11,689,512"
+    # Published: torchvision's weights metadata num_params (ResNet18_Weights.DEFAULT, read without a download)
+    published = torchvision.models.get_model_weights("resnet18").DEFAULT.meta["num_params"]
+    assert original_params == f"{published:,}"
     # float32 storage: 4 bytes per parameter plus the batch-norm buffers (common practice: torch.save of a state dict)
-    assert 4 * 11_689_512 / 1e6 < float(original_mb) < 4 * 11_689_512 / 1e6 + 0.5
+    assert 4 * published / 1e6 < float(original_mb) < 4 * published / 1e6 + 0.5
     # the channels budget stores about 1/|G| of the numbers (|G| = 8 for d4); the file adds a JSON plan
     assert 1 / 8 <= float(ratio) < 1 / 8 + 0.02
     assert float(ratio) == pytest.approx(float(file_mb) / float(original_mb), abs=2e-3)
@@ -61,12 +106,13 @@ def test_checkpoint_size_quick_and_the_header():
     assert int(converted_params.replace(",", "")) < int(original_params.replace(",", "")) / 7
 
 
-def test_inference_quick():
+def test_inference_quick(run_quick):
     output = run_quick("inference.py")
     variants = {row[2]: row for row in rows(output, "resnet18") if len(row) == 5}
     for batch in ("1", "4"):
         for label in ("original", "d4 converted, tying cached", "d4 converted, baked",
-                      "original averaged over d4, views in one batch", "original averaged over d4, one forward per view"):
+                      "original averaged over d4, views in one batch",
+                      "original averaged over d4, one forward per view"):
             row = next(r for r in rows(output, "resnet18") if len(r) == 5 and r[1] == batch and r[2] == label)
             assert leading_number(row[3]) > 0 and leading_number(row[4]) > 0
     assert any(label.startswith("d4 expanding all tied weights") for label in variants)
@@ -80,7 +126,7 @@ def test_inference_quick():
         assert leading_number(row[7]) > 0
 
 
-def test_training_step_quick():
+def test_training_step_quick(run_quick):
     output = run_quick("training_step.py")
     labels = {row[1] for row in rows(output, "resnet18") if len(row) == 4}
     assert labels == {"original", "d4 tied", "d4 baked", "d4 expansion alone (forward + backward)"}
@@ -90,7 +136,7 @@ def test_training_step_quick():
         assert all(leading_number(cell) > 0 for cell in row[2:])
 
 
-def test_conversion_quick():
+def test_conversion_quick(run_quick):
     table = {row[1]: row for row in rows(run_quick("conversion.py"), "resnet18")}
     assert set(table) == {"on", "off"}
     for row in table.values():
@@ -100,7 +146,7 @@ def test_conversion_quick():
         assert peak == pytest.approx(rise + before, abs=2)
 
 
-def test_finer_rotations_quick():
+def test_finer_rotations_quick(run_quick):
     output = run_quick("finer_rotations.py")
     variants = {row[1] for row in rows(output, "resnet18, random weights")}
     assert {"plain", "c8 harmonic", "c8 bilinear"} <= variants
@@ -111,7 +157,7 @@ def test_finer_rotations_quick():
     assert len(paired) == 2   # one paired count per kind of input, out of the 4 quick inputs
 
 
-def test_calibrated_digits_quick():
+def test_calibrated_digits_quick(run_quick):
     output = run_quick("calibrated_digits.py")
     default = rows(output, "calibrated (the defaults)")
     assert len(default) == 2   # c4 and d4, before tuning
@@ -121,7 +167,7 @@ def test_calibrated_digits_quick():
     assert "smallest budget" in output
 
 
-def test_streaming_quick():
+def test_streaming_quick(run_quick):
     output = run_quick("streaming.py")
     cache = {row[0]: row for row in rows(output, "first") + rows(output, "second")}
     assert leading_number(cache["first"][1]) > 0 and "reused: True" in cache["second"][2]
@@ -131,3 +177,40 @@ def test_streaming_quick():
               for row in rows(output, name)]
     assert len(speeds) == 3 and all(rate > 0 for rate in speeds)
     assert "online costs" in output and "expected" in output
+
+
+def test_digits_experiment_quick(run_quick, tmp_path):
+    output = run_quick("digits_experiment.py", "--json", str(tmp_path / "rows.json"))
+    table = json.loads((tmp_path / "rows.json").read_text())
+    one_image = 1 / len(load_digit_splits(seed=0).test_labels)   # the script's own split of the test set
+    tuned = [f"converted, tuned ({teacher})" for teacher in ("most-confident teacher, no labels",
+                                                             "most-confident teacher + labels",
+                                                             "probability-average teacher, no labels")]
+    for name in ("c4", "d4"):
+        group = parse_group(name)
+        mine = {row["model"]: row for row in table if row["group"] == name}
+        assert set(mine) == {"original", *(f"original + TTA ({views})" for views in VIEW_COMBINATIONS),
+                             "converted, before tuning", *tuned}
+        original = mine["original"]
+        # the original saw upright digits only, so turning them costs it accuracy: what the experiment is about
+        assert original["upright"] > original["accuracy_every_element"] + 0.1, original
+        for model, row in mine.items():
+            assert 0 <= row["worst_element"] <= row["accuracy_every_element"] <= 1, row
+            assert row["wall_ms_per_image"] > 0 and row["cpu_ms_per_image"] > 0
+            if model == "original":
+                continue
+            # averaged over the group or converted: invariant, so every element is classified alike (a float32
+            # near-tie may flip one image)
+            assert row["accuracy_every_element"] - row["worst_element"] <= one_image, row
+            assert abs(row["upright"] - row["accuracy_every_element"]) <= one_image, row
+            if model.startswith("original + TTA"):     # |G| views of every image in one batch
+                assert row["forwards"] == group.order
+                assert row["macs_per_image"] == group.order * original["macs_per_image"]
+            else:                                      # channels budget: the original's widths, one forward
+                assert row["forwards"] == 1
+                assert row["macs_per_image"] == pytest.approx(original["macs_per_image"], rel=0.05)
+        # tuning moves the converted model well away from its start (a tuning step that does nothing would not)
+        start = mine["converted, before tuning"]["accuracy_every_element"]
+        assert mine[tuned[0]]["accuracy_every_element"] > start + 0.2, (start, mine[tuned[0]])
+        assert f"### {name}: rotated test set ({len(mine)} models)" in output
+        assert "against best TTA" in output

@@ -2,8 +2,8 @@
 
 The refit itself is tested in tests/test_calibrate.py (against scikit-learn's Ridge). Here the
 reference for "keeps the original's behaviour" is the original's logits averaged over the group,
-with the group moving the tiles by numpy.rot90 (check-values.md: numpy's rot90 turns
-counter-clockwise in the plane of the two axes), independent of orbify's own group code.
+with the group moving the tiles by numpy.rot90 (numpy documentation: rot90 turns counter-clockwise,
+from the first axis towards the second), independent of orbify's own group code.
 """
 
 import numpy as np

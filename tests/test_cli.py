@@ -1,10 +1,12 @@
-"""The command line a newcomer meets: convert, sizes and demo, their help, input-size choice and error paths.
+"""The command line a newcomer meets: convert, sizes and demo, their help, input-size choice and error paths;
+the README's convert and torchrun command lines run as a user runs them, in fresh processes.
 
 Every error path must exit non-zero with one paragraph and no traceback, write nothing and leave the
 input files byte-for-byte unchanged (hashed before and after with orbify.common.safe_io.sha256_file).
 """
 
 import re
+import socket
 import subprocess
 import sys
 from pathlib import Path
@@ -13,10 +15,12 @@ import numpy as np
 import pytest
 import torch
 import torchvision
+from PIL import Image
 from torch import nn
 from typer.testing import CliRunner
 
 import orbify
+from helpers import example_params, stride_rule_holds
 from orbify.cli import app
 from orbify.common.safe_io import sha256_file
 from orbify.example import load_example_model, make_tiles
@@ -67,11 +71,12 @@ def test_convert_example_chooses_the_tile_size_and_writes_an_invariant_model(tmp
     assert "input size 33: the bundled example's tile size" in flat
     for row in ("parameters", "MACs per image", "worst weight residual", "output invariance error"):
         assert row in flat
-    assert "61,078" in flat and "7,640" in flat     # d4, channels budget: an eighth of the parameters, biases aside
+    # d4 (8 elements), channels budget: the counts from the layer shapes and the budget formula (tests/helpers.py)
+    assert f"{example_params():,}" in flat and f"{example_params(group_order=8):,}" in flat
     assert "tip: the shipped recipe 'example'" in flat
     loaded = orbify.load(out)
     assert loaded.plan.group == "d4" and tuple(loaded.plan.input_shape[-2:]) == (33, 33)
-    # Reference for the group action: numpy.rot90 and numpy.flip on the pixel axes (check-values.md).
+    # Reference for the group action: numpy.rot90 and numpy.flip on the pixel axes (numpy documentation).
     images, _ = make_tiles(4, split="any", seed=3)
     with torch.no_grad():
         logits = loaded.module(images)
@@ -126,32 +131,12 @@ def test_convert_stops_at_a_node_and_pools_its_orbits_there(tmp_path):
 
 
 # -- input sizes -------------------------------------------------------------------------------------------------
-def strided_grids_symmetric(model: nn.Module, size: int) -> bool:
-    """Independent reference: run torchvision's own model definition with forward hooks and apply the
-    common-practice rule (H + 2*padding - dilation*(kernel-1) - 1) % stride == 0 to every strided conv/pool."""
-    ok = []
-
-    def hook(module, inputs, _):
-        k, s, p, d = (module.kernel_size, module.stride, module.padding, getattr(module, "dilation", 1))
-        k, s, p, d = ((v if isinstance(v, tuple) else (v, v)) for v in (k, s, p, d))
-        h = inputs[0].shape[-1]
-        if s[0] > 1:
-            ok.append((h + 2 * p[0] - d[0] * (k[0] - 1) - 1) % s[0] == 0)
-
-    handles = [m.register_forward_hook(hook) for m in model.modules() if isinstance(m, (nn.Conv2d, nn.MaxPool2d))]
-    with torch.no_grad():
-        model(torch.zeros(1, 3, size, size))
-    for handle in handles:
-        handle.remove()
-    return all(ok)
-
-
 def test_size_choice_for_a_torchvision_backbone_is_the_nearest_safe_size_to_224():
     model = torchvision.models.resnet18(weights=None).eval()
     choice = choose_input_size(model, usual_input_size("torchvision:resnet18"))
-    assert not strided_grids_symmetric(model, 224)
-    assert strided_grids_symmetric(model, choice.size)
-    assert all(not strided_grids_symmetric(model, s) for s in range(224 - abs(choice.size - 224) + 1, choice.size))
+    assert not stride_rule_holds(model, 224)
+    assert stride_rule_holds(model, choice.size)
+    assert all(not stride_rule_holds(model, s) for s in range(224 - abs(choice.size - 224) + 1, choice.size))
     assert choice.size == 225
     assert "224" in choice.reason and "conv1" in choice.reason
 
@@ -161,7 +146,7 @@ def test_size_choice_for_a_model_of_unknown_origin_starts_from_224():
     # at 225 the three stride-2 convs see 225, 113 and 57, and 224, 112 and 56 are even.
     model = load_example_model()
     choice = choose_input_size(model, usual_input_size("orbify.example.model:build_example_cnn"))
-    assert choice.size == 225 and strided_grids_symmetric(model, 225) and not strided_grids_symmetric(model, 224)
+    assert choice.size == 225 and stride_rule_holds(model, 225) and not stride_rule_holds(model, 224)
     assert "the safe size nearest 224" in choice.reason and "unknown origin" in choice.reason
 
 
@@ -201,6 +186,112 @@ def test_convert_help_lists_every_option():
     for option in ("--group", "--budget", "--head", "--init", "--input-size", "--recipe", "--weights", "--stop-at",
                    "--trust-pickle", "--out", "--force"):
         assert option in output, option
+
+
+# -- as a user runs it: the installed console script and torchrun, in fresh processes ------------------------------
+def console_script() -> Path:
+    """The installed ``orbify`` command beside this interpreter."""
+    script = Path(sys.executable).with_name("orbify")
+    assert script.is_file(), f"the console script {script} is not installed"
+    return script
+
+
+def run_as_a_user(command: list, cwd: Path, timeout: int = 300) -> subprocess.CompletedProcess:
+    """Run ``command`` in a fresh process in ``cwd``, with no environment but a terminal width and one thread
+    per process (the suite shares two cores), and return what it printed."""
+    environment = {"COLUMNS": "120", "PATH": "", "OMP_NUM_THREADS": "1"}
+    done = subprocess.run([str(part) for part in command], cwd=cwd, capture_output=True, text=True,
+                          timeout=timeout, env=environment)
+    assert done.returncode == 0, done.stdout[-3000:] + done.stderr[-3000:]
+    return done
+
+
+def channels_budget_params(model: nn.Module, order: int) -> int:
+    """Stored parameters of ``model`` converted under the channels budget to a group of ``order`` elements, from
+    its layer shapes alone (docs/design.md §7): every conv weight stores 1/order of its numbers (one per orbit
+    of index tuples, the group moving the output's orbit slots freely), every batch norm one weight and bias
+    per orbit, and the invariant linear head one weight per input orbit and class, plus its biases."""
+    total = 0
+    for module in model.modules():
+        if isinstance(module, nn.Conv2d):
+            total += module.weight.numel() // order + (0 if module.bias is None else module.out_channels // order)
+        elif isinstance(module, nn.BatchNorm2d):
+            total += 2 * module.num_features // order
+        elif isinstance(module, nn.Linear):
+            total += module.in_features // order * module.out_features + module.out_features
+    return total
+
+
+def test_the_readme_convert_example_runs_through_the_console_script(tmp_path):
+    # README, "Converting your own model": orbify convert torchvision:resnet18 --weights resnet18.pt -o resnet18-d4.orb
+    # (at a small safe size, 33 = 32 + 1, to keep it quick; the size choice is tested above)
+    torch.manual_seed(0)
+    original = torchvision.models.resnet18(weights=None)
+    torch.save(original.state_dict(), tmp_path / "resnet18.pt")
+    before = sha256_file(tmp_path / "resnet18.pt")
+    done = run_as_a_user([console_script(), "convert", "torchvision:resnet18", "--weights", "resnet18.pt",
+                          "--input-size", "33", "-o", "resnet18-d4.orb"], cwd=tmp_path)
+    flat = " ".join(done.stdout.split())
+    assert "tip: the shipped recipe 'resnet'" in flat and "input size 33: given with --input-size, safe" in flat
+    # Published: torchvision's weights metadata num_params (ResNet18_Weights.DEFAULT, read without a download)
+    published = torchvision.models.get_model_weights("resnet18").DEFAULT.meta["num_params"]
+    expected = channels_budget_params(original, order=8)
+    assert f"{published:,}" in flat and f"{expected:,}" in flat, flat
+    assert sha256_file(tmp_path / "resnet18.pt") == before
+    loaded = orbify.load(tmp_path / "resnet18-d4.orb")
+    assert loaded.plan.group == "d4" and sum(p.numel() for p in loaded.module.parameters()) == expected
+    # the weights file was read: the head keeps its biases, and averaging its weight over the orbits of input
+    # channels keeps every row's sum
+    assert torch.equal(loaded.module.fc.bias, original.fc.bias)
+    torch.testing.assert_close(loaded.module.fc.weight.sum(1), original.fc.weight.sum(1), atol=1e-5, rtol=0)
+    images = torch.randn(2, 3, 33, 33)
+    with torch.no_grad():
+        logits = loaded.module.eval()(images)
+        turned = loaded.module(torch.from_numpy(np.ascontiguousarray(np.rot90(images.numpy(), 1, axes=(-2, -1)))))
+    assert float((turned - logits).norm() / logits.norm()) <= 1e-5
+
+
+def free_port() -> int:
+    with socket.socket() as probe:
+        probe.bind(("127.0.0.1", 0))
+        return probe.getsockname()[1]
+
+
+def write_png_tiles(folder: Path, count: int) -> Path:
+    """``count`` example tiles (33 px) as 8-bit PNG files, through Pillow."""
+    folder.mkdir()
+    images, _ = make_tiles(count, split="any", seed=5)
+    scaled = (images - images.min()) / (images.max() - images.min()) * 255
+    for index, image in enumerate(scaled.round().to(torch.uint8).permute(0, 2, 3, 1).numpy()):
+        Image.fromarray(image).save(folder / f"tile{index:02d}.png")
+    return folder
+
+
+@pytest.mark.slow
+def test_the_readme_torchrun_command_tunes_on_two_cpu_processes(tmp_path):
+    # README, "Many processes, many machines":
+    # torchrun --nproc_per_node=4 -m orbify.cli tune model-c4.orb --weights original.pt --data images/ -o tuned.orb
+    # with two CPU processes (gloo), 16 tiles, one epoch
+    torch.save(load_example_model().state_dict(), tmp_path / "original.pt")
+    code, output = run("convert", "orbify.example.model:build_example_cnn", "--weights", tmp_path / "original.pt",
+                       "--group", "c4", "-o", tmp_path / "model-c4.orb")
+    assert code == 0, output
+    write_png_tiles(tmp_path / "images", 16)
+    done = run_as_a_user([sys.executable, "-m", "torch.distributed.run", "--nproc_per_node=2", "--nnodes=1",
+                          "--master_addr=127.0.0.1", f"--master_port={free_port()}",
+                          "-m", "orbify.cli", "tune", "model-c4.orb", "--weights", "original.pt", "--data", "images/",
+                          "--epochs", "1", "--batch-size", "4", "--workers", "0", "-o", "tuned.orb"], cwd=tmp_path)
+    flat = " ".join(done.stdout.split())
+    assert "tuning on 2 processes: 14 training, 2 held-out images" in flat, flat
+    start, tuned = orbify.load(tmp_path / "model-c4.orb"), orbify.load(tmp_path / "tuned.orb")
+    moved = [key for key, value in start.module.state_dict().items()
+             if not torch.equal(value, tuned.module.state_dict()[key])]
+    assert any(key.endswith("parametrizations.weight.original") for key in moved), moved
+    images, _ = make_tiles(4, split="any", seed=6)
+    with torch.no_grad():
+        logits = tuned.module.eval()(images)
+        turned = tuned.module(torch.from_numpy(np.ascontiguousarray(np.rot90(images.numpy(), 1, axes=(-2, -1)))))
+    assert float((turned - logits).norm() / logits.norm()) <= 1e-5
 
 
 # -- error paths -------------------------------------------------------------------------------------------------

@@ -99,18 +99,25 @@ def test_output_path_that_is_a_directory_is_refused_even_with_force(tmp_path):
         atomic_write(tmp_path, _write_bytes(b"x"), force=True)
 
 
-@pytest.mark.skipif(
-    os.geteuid() == 0, reason="root writes into read-only directories regardless of mode bits"
-)
-def test_read_only_directory_is_a_clear_error(tmp_path):
-    locked = tmp_path / "locked"
-    locked.mkdir()
-    locked.chmod(0o500)
-    try:
-        with pytest.raises(OutputError, match="Cannot create a file"):
-            atomic_write(locked / "out.bin", _write_bytes(b"x"))
-    finally:
-        locked.chmod(0o700)
+@pytest.mark.skipif(not Path("/sys/kernel").is_dir(), reason="needs Linux's sysfs at /sys")
+def test_directory_the_system_refuses_new_files_in_is_a_clear_error():
+    """sysfs (/sys) refuses to create regular files for every user, root included (EACCES, or EROFS where it is
+    mounted read-only), unlike a directory without write permission, which root writes into regardless."""
+    target = Path("/sys/orbify-test-output.bin")
+    with pytest.raises(OutputError, match="Cannot create a file in the directory '/sys'") as caught:
+        atomic_write(target, _write_bytes(b"x"))
+    assert "choose an output path in a directory you can write to" in str(caught.value)
+    assert not target.exists()
+
+
+def test_a_name_too_long_for_the_file_system_is_a_clear_error(tmp_path):
+    """A name within the 255-byte limit of Linux file systems whose temporary sibling (the name with a prefix and
+    a suffix) exceeds it: the write fails with ENAMETOOLONG, for root as for anyone, and leaves nothing."""
+    target = tmp_path / ("m" * 250 + ".pt")
+    with pytest.raises(OutputError, match="Cannot create a file") as caught:
+        atomic_write(target, _write_bytes(b"x"))
+    assert os.strerror(errno.ENAMETOOLONG) in str(caught.value)
+    assert _listing(tmp_path) == []
 
 
 def test_directory_refusing_new_files_is_a_clear_error(tmp_path, monkeypatch):

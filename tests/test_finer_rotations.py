@@ -319,6 +319,13 @@ def _recalibrated(model: nn.Module, size: int) -> nn.Module:
     return model.eval()
 
 
+#: Largest 45°-error of the converted resnet18 as a share of the plain original's on the same inputs. Measured
+#: (output, random weights, batch norms set on smooth patterns): c8 0.19 against 0.84 (0.23), d8:bilinear 0.30
+#: against 0.91 (0.33). For c8, the original averaged over the quarter turns only measures 0.39, and filters
+#: turned by the quarter turn below instead of by 45° measure 0.34: both fail.
+PLAIN_RATIO = {"c8": 0.3, "d8:bilinear": 0.4}
+
+
 @pytest.mark.slow
 @pytest.mark.parametrize("spec", ["c8", "d8:bilinear"])
 def test_resnet18_converts_exact_on_quarter_turns_and_bakes(spec, tmp_path):
@@ -332,7 +339,11 @@ def test_resnet18_converts_exact_on_quarter_turns_and_bakes(spec, tmp_path):
     errors = approximate_errors(converted.double(), group, SmoothPattern(2, 3, 33, seed=2))
     exact, approximate = worst_errors(errors)["output"]
     assert exact <= TOL                         # float64: ~1e-15 measured
-    assert approximate < 0.5                    # approximate, and said so; measured ~0.15
+    # Off the quarter turns the conversion is approximate (and says so): its error must stay well below the
+    # plain original's on the same inputs and elements, by the ratio in PLAIN_RATIO.
+    off_grid = [g for g in range(1, group.order) if not group.acts_exactly(g)]
+    plain = worst_errors(approximate_errors(model, group, SmoothPattern(2, 3, 33, seed=2), elements=off_grid))
+    assert approximate < PLAIN_RATIO[spec] * plain["output"][1], (approximate, plain["output"])
     baked = bake_model(converted.float())
     with torch.no_grad():
         torch.testing.assert_close(baked(x), converted.float()(x), rtol=1e-4, atol=1e-5)

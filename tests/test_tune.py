@@ -106,9 +106,18 @@ def test_tuning_lowers_the_loss_raises_rotated_accuracy_and_keeps_invariance(dig
     assert result.final.transformed > result.before.transformed + 0.1
     # With an upright-only original the most confident view is the best teacher (docs/design.md §13).
     assert result.teacher_accuracy["most-confident"] > result.teacher_accuracy["probability"]
-    # Held-out accuracy on rotated copies, measured independently of the tuner on the test split.
-    from orbify.experiments.digits import accuracy_every_element
-    assert accuracy_every_element(student, group, splits.test_images, splits.test_labels) > 0.35
+    # Held-out accuracy on the test split moved by every element, measured independently of the tuner, beside
+    # the two alternatives on the same moved digits: the unconverted original (measured 0.33; tuned 0.50), and
+    # the original averaged over the group with the teacher's own combination, the tuning's target (0.83). Four
+    # epochs close part of that gap: the margin 0.4 stands above the measured 0.33. The averaged original is
+    # invariant (test_group_averaged_original_is_invariant), so its accuracy on the upright digits is the same
+    # as on every moved copy.
+    from orbify.experiments.digits import accuracy, accuracy_every_element
+    tuned = accuracy_every_element(student, group, splits.test_images, splits.test_labels)
+    plain = accuracy_every_element(original, group, splits.test_images, splits.test_labels)
+    averaged = accuracy(GroupAveraged(original, group, "most-confident"), splits.test_images, splits.test_labels)
+    assert tuned >= plain + 0.1, (tuned, plain)
+    assert tuned >= averaged - 0.4, (tuned, averaged)
 
     assert not student.training
     assert max_invariance_error(student, group, splits.test_images[:64]) < 1e-5

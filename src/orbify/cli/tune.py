@@ -18,7 +18,7 @@ from rich.table import Table
 from torch import fx, nn
 
 from orbify.cli.app import app, console
-from orbify.cli.models import Trust, is_converted_source, read_converted, read_model
+from orbify.cli.models import Trust, is_converted_source, print_notes, read_converted, read_model
 from orbify.cli.options import ForceOption, TrustOption, TrustSourceOption, parse_floats
 from orbify.cli.outputs import refuse_output
 from orbify.common.options import check_choice
@@ -28,7 +28,9 @@ from orbify.data.images import evenly_spaced
 from orbify.data.tiles import Preparation, Tiles
 from orbify.errors import OptionError
 from orbify.files.saving import require_reference, save
-from orbify.files.sources import TORCHVISION_PREFIX, load_weights_file, rebuild
+from orbify.files.source_arguments import TORCHVISION_PREFIX
+from orbify.files.sources import rebuild
+from orbify.files.weights import load_weights_file
 from orbify.graph.plan import ConversionPlan
 from orbify.graph.sizes import SizeChecker, input_channels
 from orbify.recipes.schema import CALIBRATION_IMAGES, CONVERT_DEFAULTS
@@ -240,9 +242,10 @@ def _tuple(values: list[float] | None) -> tuple[float, ...] | None:
 
 
 def _rebuild_teacher(reference: str, weights: Path) -> nn.Module:
-    """The original a converted file records (its consent already checked), with the trained weights from --weights."""
+    """The original a converted file records (its consent already checked), with the trained weights from --weights;
+    what loading them adapted is printed as notes."""
     teacher = rebuild(reference)
-    load_weights_file(teacher, weights)
+    print_notes(load_weights_file(teacher, weights, reference=reference))
     return teacher
 
 

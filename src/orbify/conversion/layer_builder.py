@@ -99,7 +99,7 @@ class LayerBuilder:
             lout = self._output_layout(node, old.out_features)
             new = self._new(nn.Linear, lin.size(state.group), lout.size(state.group), bias=old.bias is not None,
                             **factory_kwargs(old.weight))
-            tie_linear(new, state.group, lin, lout, where=describe(node))
+            tie_linear(new, state.group, lin, lout, where=describe(node), project=not state.carry)
             layer = TiedLayer(old, new, lin, lout)
         else:
             layer = self._conv(node, step, old, lin)
@@ -121,7 +121,7 @@ class LayerBuilder:
             lout = self._output_layout(node, old.out_channels)
             groups = self._groups(step, old.groups, lin, lout, notes)
         new = self._new(type(old), lin.size(group), lout.size(group), **_conv_geometry(old, groups))
-        tie_conv(new, group, lin, lout, where=describe(node))
+        tie_conv(new, group, lin, lout, where=describe(node), project=not self.state.carry)
         return TiedLayer(old, new, lin, lout, groups, notes)
 
     def _output_layout(self, node: fx.Node, channels: int) -> Layout:

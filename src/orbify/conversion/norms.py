@@ -10,7 +10,6 @@ from orbify.graph.tracing import shape
 from orbify.layers.tied import OrbitBatchNorm
 from orbify.symmetry.groups import Group
 from orbify.symmetry.layouts import Layout, Orbit
-from orbify.transfer.loading import factory_kwargs
 from orbify.transfer.norms import batch_norm_rows, fresh_batch_norm
 
 
@@ -18,14 +17,11 @@ def batch_norm_for(old: nn.modules.batchnorm._BatchNorm, layout: Layout | None, 
                    carry: bool) -> nn.Module:
     """The batch norm over the channels ``source`` names: an orbit batch norm on orbit channels.
 
-    With ``carry`` it takes the statistics and affine parameters of those channels, otherwise it is fresh.
+    With ``carry`` it takes the statistics and affine parameters of those channels, otherwise it is fresh;
+    either way on the device and in the dtype of ``old``.
     """
     plain = batch_norm_rows(old, source) if carry else fresh_batch_norm(old, source.numel())
-    if not isinstance(layout, Orbit):
-        return plain
-    like = next((t for t in (plain.weight, plain.running_mean) if t is not None), None)
-    new = OrbitBatchNorm.from_plain(plain, group)
-    return new.to(**factory_kwargs(like)) if like is not None else new
+    return OrbitBatchNorm.from_plain(plain, group) if isinstance(layout, Orbit) else plain
 
 
 def affine_norm_for(step: Step, old: nn.GroupNorm | nn.LayerNorm, group: Group) -> nn.GroupNorm | nn.LayerNorm:

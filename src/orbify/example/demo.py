@@ -2,10 +2,11 @@
 
 :func:`run_demo` takes the example CNN (trained on upright micrograph tiles, see
 :mod:`orbify.example`), converts it under :data:`DEMO_GROUP`, checks it, tunes it by distillation
-on upright tiles, checks it again and exports it as a pt2 program. It measures every model on
-fresh tiles — upright, in the field (any angle, mirrored half the time) and moved by every group
-element — and leaves the converted and tuned models, the check reports, the exported program,
-the before/after table and plots in one folder. ``orbify demo`` calls it.
+on upright tiles, checks it again and exports it as a pt2 program. It measures every model, and
+the alternative a user weighs (the original averaged over the group at test time, exact too but
+|G| forward passes per tile), on fresh tiles — upright, in the field (any angle, mirrored half the
+time) and moved by every group element — and leaves the converted and tuned models, the check
+reports, the exported program, the before/after table and plots in one folder. ``orbify demo`` calls it.
 """
 
 from __future__ import annotations
@@ -37,8 +38,9 @@ from orbify.symmetry.groups import Group, parse_group
 from orbify.symmetry.resample import rotate_images
 from orbify.tuning.loop import tune
 from orbify.tuning.records import TuneResult
-from orbify.tuning.teacher import view_logits
+from orbify.tuning.teacher import GroupAveraged, view_logits
 from orbify.verification.check import CheckReport, check_model
+from orbify.verification.html_report import write_check_html
 from orbify.verification.measure import count_macs, count_params
 from orbify.verification.report import check_markdown, markdown_table, plot_check, write_json, write_text
 
@@ -55,6 +57,9 @@ DEMO_INIT = "calibrated"
 the original averaged over the group, a poor classifier of field tiles since the original only saw
 upright ones; tuning then takes the most confident view as teacher (figures: README.md, "How the
 numbers in this README were measured")."""
+AVERAGED_COLUMN = f"original averaged over {DEMO_GROUP} (test-time)"
+"""The column of the original averaged over the group at test time
+(:class:`~orbify.tuning.teacher.GroupAveraged` with the tuning teacher's view combination)."""
 CALIBRATION_TILES = 256
 """Upright training tiles, without their labels, that the calibrated conversion refits on."""
 
@@ -69,6 +74,9 @@ ANGLE_TILES = 200
 """Upright tiles rotated to every angle of the accuracy-by-angle plot."""
 CHECK_TILES = 16
 """Upright tiles each check measures per-layer errors on (in float64)."""
+MEASURE_BATCH = 16
+"""Tiles per forward pass when measuring accuracies and invariance errors. Small batches run fastest
+on CPU; measuring the invariance of the test-time average turns 16 tiles into 16 × |G|² images."""
 TIMING_BATCH = 256
 TIMING_REPEATS = 5
 SEEDS = {"train": 100, "upright": 101, "any": 102}
@@ -82,6 +90,7 @@ FILES = {
     "check_converted_json": "check-converted.json",
     "check_tuned_md": "check-tuned.md",
     "check_tuned_json": "check-tuned.json",
+    "check_tuned_html": "check-tuned.html",
     "results_json": "results.json",
     "results_md": "results.md",
 }
@@ -120,7 +129,8 @@ class ModelFigures:
 class DemoResult:
     """What :func:`run_demo` measured and wrote.
 
-    ``columns``: the original, the converted (untuned), the tuned and the exported model, in that
+    ``columns``: the original, the original averaged over the group at test time
+    (:data:`AVERAGED_COLUMN`), the converted (untuned), the tuned and the exported model, in that
     order. ``accuracy_by_angle`` maps a column name to its accuracy on the upright tiles rotated by
     each of ``angles`` (degrees). ``files`` maps a role (keys of :data:`FILES` and :data:`PLOTS`)
     to the path written. ``seconds``: wall time of the whole run.
@@ -139,7 +149,7 @@ class DemoResult:
     notes: tuple[str, ...] = field(default=())
 
     def column(self, name: str) -> ModelFigures:
-        """The column of that name ("original", "converted", "tuned", "exported")."""
+        """The column of that name ("original", :data:`AVERAGED_COLUMN`, "converted", "tuned", "exported")."""
         for figures in self.columns:
             if figures.name == name:
                 return figures
@@ -188,7 +198,8 @@ def run_demo(out_dir: str | Path, *, force: bool = False, progress: bool = True)
     Steps: convert the example CNN under :data:`DEMO_GROUP` with the settings of the shipped recipe
     :data:`RECIPE`, check it, tune it by distillation on :data:`TRAIN_TILES` upright tiles (the
     recipe's tuning settings, the tiles' labels added), check it again, export it as a pt2 program,
-    then measure the original, converted, tuned and exported models on fresh tiles.
+    then measure the original, the original averaged over the group at test time (with the
+    teacher's view combination), and the converted, tuned and exported models on fresh tiles.
     ``out_dir`` is created if needed; the files of :data:`FILES` and :data:`PLOTS` are written in it
     (plots only when matplotlib is installed). With ``progress`` each step is reported on the
     terminal. The run is repeatable with the same software and thread count: every random draw is
@@ -236,7 +247,8 @@ class _Demo:
             self.upright = make_tiles(EVALUATION_TILES, split="upright", size=size, seed=SEEDS["upright"])
             self.field = make_tiles(EVALUATION_TILES, split="any", size=size, seed=SEEDS["any"])
         calibration = train_images[:CALIBRATION_TILES] if self.init == "calibrated" else None
-        how = f"init {self.init}" + (f" on {CALIBRATION_TILES} unlabeled upright tiles" if calibration is not None else "")
+        how = f"init {self.init}" + (f" on {CALIBRATION_TILES} unlabeled upright tiles" if calibration is not None
+                                     else "")
         with log.step(f"converting to {group.name} (recipe {recipe.name!r}, budget {options['budget']}, {how})"):
             converted, plan = convert(original, example_input=train_images[:1], calibration=calibration, **options)
         self.notes.append(f"converted with {how}")
@@ -244,11 +256,16 @@ class _Demo:
             report = self.check(converted, original, plan, "converted")
             save(converted, plan, self.path("converted"), reference=source.reference, recipe=recipe.name,
                  check=report.to_dict(), force=self.force)
-        with log.step("measuring the original and the converted model"):
-            columns = [self.figures("original", original), self.figures("converted", converted)]
-            by_angle = {"original": self.accuracy_by_angle(original),
-                        "converted": self.accuracy_by_angle(converted)}
         settings = merge_options(recipe, {}, "tune")
+        # in eval mode, so that restoring its mode (count_macs does) leaves the original's batch norms in eval
+        averaged = GroupAveraged(original, group, settings["view_combination"]).eval()
+        self.notes.append(f"{AVERAGED_COLUMN}: the original run on the {group.order} views of every tile, "
+                          f"combined by the tuning teacher's rule ({settings['view_combination']} view)")
+        with log.step("measuring the original, its test-time average and the converted model"):
+            columns = [self.figures(name, model) for name, model in
+                       (("original", original), (AVERAGED_COLUMN, averaged), ("converted", converted))]
+            by_angle = {figures.name: self.accuracy_by_angle(model)
+                        for figures, model in zip(columns, (original, averaged, converted), strict=True)}
         log.say(f"tuning: {settings['epochs']} epochs of distillation on {TRAIN_TILES} upright tiles, "
                 f"teacher: the original's {settings['view_combination']} view")
         tuned = copy.deepcopy(converted)
@@ -284,6 +301,8 @@ class _Demo:
         report = check_model(converted, original, plan, ImageSet(images[:CHECK_TILES], labels[:CHECK_TILES]))
         write_text(self.path(f"check_{name}_md"), check_markdown(report), force=self.force)
         write_json(self.path(f"check_{name}_json"), report.to_dict(), force=self.force)
+        if f"check_{name}_html" in FILES:      # one report to hand on: the tuned model's, tables and plots in one file
+            write_check_html(report, self.path(f"check_{name}_html"), force=self.force)
         return report
 
     @torch.no_grad()
@@ -296,7 +315,7 @@ class _Demo:
         structure = structure if structure is not None else model
         images, labels = self.upright
         with parametrize.cached():
-            views = torch.cat([view_logits(model, self.group, chunk) for chunk in images.split(TIMING_BATCH)], 1)
+            views = torch.cat([view_logits(model, self.group, chunk) for chunk in images.split(MEASURE_BATCH)], 1)
             moved = (views.argmax(-1) == labels).double().mean(1)
             upright = views[0]
             invariance = max(float((view - upright).norm() / upright.norm()) for view in views[1:])
@@ -334,27 +353,39 @@ class _Demo:
         plot_folder.mkdir(exist_ok=True)
         for written in plot_check(report, plot_folder, force=self.force):
             self.files[written.stem] = written
-        self._save_figure(plt, _angle_figure(plt, result), "accuracy_by_angle")
+        figure = accuracy_by_angle_figure(plt, result.angles, result.accuracy_by_angle, result.group)
+        self._save_figure(plt, figure, "accuracy_by_angle")
         self._save_figure(plt, _tuning_figure(plt, result.tuning), "tuning")
 
     def _save_figure(self, plt, figure, role: str) -> None:
-        buffer = io.BytesIO()
-        figure.savefig(buffer, format="png", dpi=120, bbox_inches="tight")
-        plt.close(figure)
-        atomic_write(self.path(role), lambda stream: stream.write(buffer.getvalue()), force=self.force)
+        png = figure_png(plt, figure)
+        atomic_write(self.path(role), lambda stream: stream.write(png), force=self.force)
 
 
-def _angle_figure(plt, result: DemoResult):
+def accuracy_by_angle_figure(plt, angles, accuracy_by_angle: dict[str, tuple[float, ...]], group: str):
+    """The figure of ``plots/accuracy_by_angle.png``: one line per model, labelled with its column name.
+
+    ``accuracy_by_angle`` maps a column name to its accuracies (0–1) at each of ``angles`` (degrees),
+    as in :attr:`DemoResult.accuracy_by_angle`; the test-time average is drawn dashed.
+    """
     figure, axes = plt.subplots(figsize=(7, 4))
-    for name, values in result.accuracy_by_angle.items():
-        axes.plot(result.angles, [100 * v for v in values], "o-", label=name)
+    for name, values in accuracy_by_angle.items():
+        axes.plot(angles, [100 * v for v in values], "s--" if name == AVERAGED_COLUMN else "o-", label=name)
     axes.set_xticks(list(range(0, 361, 45)))
     axes.set_xlabel("rotation of the upright tiles (degrees, counter-clockwise)")
     axes.set_ylabel("accuracy (%)")
     axes.set_ylim(0, 102)
-    axes.set_title(f"accuracy by angle: the original against the {result.group} model")
+    axes.set_title(f"accuracy by angle: the original, its test-time average and the {group} model")
     axes.legend()
     return figure
+
+
+def figure_png(plt, figure) -> bytes:
+    """``figure`` as the demo writes its plots (PNG, 120 dpi, tight bounding box); the figure is closed."""
+    buffer = io.BytesIO()
+    figure.savefig(buffer, format="png", dpi=120, bbox_inches="tight")
+    plt.close(figure)
+    return buffer.getvalue()
 
 
 def _tuning_figure(plt, tuning: TuneResult):
@@ -387,7 +418,7 @@ def _milliseconds_per_image(model: nn.Module, images: torch.Tensor) -> float:
 
 def _accuracy(model: nn.Module, images: torch.Tensor, labels: torch.Tensor) -> float:
     """Share of ``images`` whose top logit is the label (the model is used as it is, in eval mode)."""
-    predicted = torch.cat([model(chunk).argmax(-1) for chunk in images.split(TIMING_BATCH)])
+    predicted = torch.cat([model(chunk).argmax(-1) for chunk in images.split(MEASURE_BATCH)])
     return float((predicted == labels).double().mean())
 
 

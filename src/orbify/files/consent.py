@@ -5,7 +5,9 @@ module types its conversion kept whole. Rebuilding imports modules and calls a f
 description is plain text that anyone can edit, so the reference decides what code runs. A file
 may name on its own only what a registry vouches for:
 
-- ``torchvision:NAME``: looked up in torchvision's model registry before anything is built;
+- ``torchvision:NAME`` (with or without ``?ARG=VALUE`` arguments): the name is looked up in
+  torchvision's model registry and each argument, a literal, checked against the builder's
+  signature before anything is built;
 - ``example`` (and the factory references of the bundled example that older files record);
 - leaf module types defined in torch or torchvision modules that are already imported (taking
   them runs no new code).
@@ -22,7 +24,8 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from orbify.errors import TrustError
-from orbify.files.sources import BUNDLED_FACTORIES, FACTORY_PATTERN, TORCHVISION_PREFIX
+from orbify.files.source_arguments import TORCHVISION_PREFIX
+from orbify.files.sources import BUNDLED_FACTORIES, FACTORY_PATTERN
 
 _LIBRARIES = ("torch", "torchvision")
 

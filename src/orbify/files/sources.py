@@ -2,9 +2,11 @@
 
 A SOURCE is one of, tried in this order:
 
-``torchvision:NAME``
+``torchvision:NAME`` or ``torchvision:NAME?ARG=VALUE&ARG=VALUE``
     A torchvision architecture, e.g. ``torchvision:resnet18``, built with random weights
-    (never downloaded; pretrained weights come from a separate weights file).
+    (never downloaded; pretrained weights come from a separate weights file). Arguments set what
+    the builder takes, e.g. ``torchvision:resnet18?num_classes=6`` for a fine-tuned head; each
+    value is a literal (``6``, ``0.5``, ``true``, a plain word), never evaluated.
 ``example``
     The bundled example CNN (:mod:`orbify.example`) with its shipped weights; rebuilt from a
     reference, the architecture alone.
@@ -17,22 +19,23 @@ a path to an existing file
     An importable callable that takes no arguments and returns an ``nn.Module``; ``factory``
     may be a dotted attribute path such as ``Class.build``.
 
-:func:`load_source` builds the model and optionally loads a weights file into it;
-:func:`rebuild` builds the architecture again from the ``reference`` string it reported. A
-SOURCE the user typed may name a module in the working directory; a reference read from a file
-never searches it (docs/design.md §16).
+:func:`load_source` builds the model and optionally loads a weights file into it
+(:func:`orbify.files.weights.load_weights_file`, which adapts training checkpoints and reports how);
+:func:`rebuild` builds the architecture again from the ``reference`` string it reported. A SOURCE
+the user typed may name a module in the working directory; a reference read from a file never
+searches it (docs/design.md §16). Torchvision sources and their arguments are read and checked in
+:mod:`orbify.files.source_arguments`.
 """
 
 from __future__ import annotations
 
 import difflib
 import importlib
-import inspect
 import os
 import re
 import sys
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Callable
 
@@ -40,9 +43,10 @@ import torch
 from torch import nn
 
 from orbify.common.safe_io import PathLike, damaged_file_error, load_torch_weights, unsafe_globals
-from orbify.errors import CheckpointError, SourceError, TrustError
+from orbify.errors import SourceError, TrustError
+from orbify.files.source_arguments import TORCHVISION_PREFIX, build_torchvision
+from orbify.files.weights import load_weights_file
 
-TORCHVISION_PREFIX = "torchvision:"
 EXAMPLE_SOURCE = "example"
 BUNDLED_FACTORIES = {
     EXAMPLE_SOURCE: "orbify.example.model:build_example_cnn",
@@ -57,7 +61,6 @@ _ACCEPTED_FORMS = (
     "give torchvision:NAME (e.g. torchvision:resnet18), example, package.module:factory, "
     "or the path of a model file"
 )
-_LISTED_KEYS = 5
 
 IMAGENET_SIZE = 224
 """The usual input side of ImageNet backbones (torchvision's classification models; common practice)."""
@@ -72,11 +75,14 @@ class LoadedSource:
 
     ``module`` is in eval mode. ``reference`` rebuilds the architecture with :func:`rebuild`
     (``'torchvision:resnet18'``, ``'pkg.mod:factory'``); it is ``None`` for a model that only
-    its file can recreate, such as a pickled whole model.
+    its file can recreate, such as a pickled whole model. ``notes`` come from
+    :func:`orbify.files.weights.load_weights_file`.
     """
 
     module: nn.Module
     reference: str | None
+    notes: tuple[str, ...] = ()
+    """One line each on what loading the weights adapted (a wrapper's key prefix removed), for the caller to show."""
 
 
 FileClaim = Callable[[Path], bool]
@@ -114,16 +120,17 @@ def load_source(
     """Build the model that ``spec`` names, load ``weights`` into it and put it in eval mode.
 
     ``weights`` is a ``torch.save`` file read with ``weights_only=True``: a state dict, or a
-    dict holding one under ``'state_dict'`` or ``'model'``. Every key and shape must match
-    the model. ``spec`` counts as typed by the user: a factory module may come from the working
-    directory. ``trust_source`` lets a converted file given as ``spec`` run the factory and leaf
-    types it records. Raises :class:`SourceError` for a SOURCE that cannot be built,
+    checkpoint holding one. Every key and shape must match the model, once a prefix that all its
+    keys carry is removed (see :func:`orbify.files.weights.load_weights_file`, whose notes the
+    result keeps). ``spec`` counts as typed by the user: a factory module may come
+    from the working directory. ``trust_source`` lets a converted file given as ``spec`` run the
+    factory and leaf types it records. Raises :class:`SourceError` for a SOURCE that cannot be built,
     :class:`TrustError` for a pickled model without ``trust_pickle`` or a converted file naming
     code without ``trust_source``, and :class:`CheckpointError` for an unreadable or mismatched file.
     """
     loaded = _build(spec, trust_pickle=trust_pickle, trust_source=trust_source)
     if weights is not None:
-        load_weights_file(loaded.module, weights)
+        loaded = replace(loaded, notes=load_weights_file(loaded.module, weights, reference=loaded.reference))
     loaded.module.eval()
     return loaded
 
@@ -133,11 +140,12 @@ def rebuild(reference: str, *, working_directory: bool = False) -> nn.Module:
 
     The weights are freshly initialised (the example's factory of older files loads its shipped
     ones): no weights are read or downloaded. A torchvision name is looked up in torchvision's
-    registry before anything is built. ``working_directory`` lets a factory's module be found in
-    the working directory: only for a reference the user typed, never for one read from a file.
+    registry, and its arguments checked against the builder's signature, before anything is
+    built. ``working_directory`` lets a factory's module be found in the working directory: only
+    for a reference the user typed, never for one read from a file.
     """
     if reference.startswith(TORCHVISION_PREFIX):
-        module = _build_torchvision(reference[len(TORCHVISION_PREFIX):])
+        module = build_torchvision(reference)[0]
     elif reference in BUNDLED_FACTORIES:
         module = _build_factory(BUNDLED_FACTORIES[reference], working_directory=False)
     elif FACTORY_PATTERN.match(reference):
@@ -153,8 +161,8 @@ def rebuild(reference: str, *, working_directory: bool = False) -> nn.Module:
 def usual_input_size(source: str) -> tuple[int, str]:
     """The input side the architecture a SOURCE names is usually run at, with what that guess rests on.
 
-    ``example`` → 33 (its tile size); ``torchvision:NAME`` → 224 (ImageNet backbones); anything
-    else → 224, the most common size of pretrained backbones.
+    ``example`` → 33 (its tile size); ``torchvision:NAME`` (with or without arguments) → 224 (ImageNet
+    backbones); anything else → 224, the most common size of pretrained backbones.
     """
     if source == EXAMPLE_SOURCE:
         return EXAMPLE_SIZE, "the bundled example's tile size"
@@ -168,7 +176,8 @@ def _build(spec: str, *, trust_pickle: bool, trust_source: bool) -> LoadedSource
     if not spec.strip():
         raise SourceError("No model source was given", fix=_ACCEPTED_FORMS)
     if spec.startswith(TORCHVISION_PREFIX):
-        return LoadedSource(rebuild(spec), spec.lower())
+        module, reference = build_torchvision(spec)
+        return LoadedSource(module.eval(), reference)
     if spec == EXAMPLE_SOURCE:
         return LoadedSource(_build_factory(_EXAMPLE_WITH_WEIGHTS, working_directory=False), EXAMPLE_SOURCE)
     path = Path(spec)
@@ -181,31 +190,6 @@ def _build(spec: str, *, trust_pickle: bool, trust_source: bool) -> LoadedSource
     if path.suffix or "/" in spec or "\\" in spec:
         raise SourceError(f"The model file {spec!r} does not exist", fix="check the path; " + _ACCEPTED_FORMS)
     raise SourceError(f"{spec!r} is not a model source orbify understands", fix=_ACCEPTED_FORMS)
-
-
-def _build_torchvision(name: str) -> nn.Module:
-    """``torchvision.models.get_model(name)`` with every ``weights*`` argument set to None."""
-    try:
-        import torchvision.models
-    except ImportError as error:
-        raise SourceError(
-            "torchvision:NAME sources need the torchvision package, which is not installed",
-            fix="pip install torchvision",
-        ) from error
-    known = torchvision.models.list_models()
-    if name.lower() not in known:
-        close = difflib.get_close_matches(name.lower(), known, n=5)
-        hint = f"close names: {', '.join(close)}" if close else "see torchvision.models.list_models()"
-        raise SourceError(
-            f"torchvision has no model named {name!r}", where=TORCHVISION_PREFIX + name, fix=hint
-        )
-    builder = torchvision.models.get_model_builder(name.lower())
-    no_download = {
-        parameter: None
-        for parameter in inspect.signature(builder).parameters
-        if parameter == "weights" or parameter.startswith("weights_")
-    }
-    return builder(**no_download)
 
 
 def import_module(module_name: str, *, working_directory: bool):
@@ -326,74 +310,3 @@ def _not_a_model(path: Path, content: object) -> SourceError:
         f"The model file {str(path)!r} holds a {type(content).__name__}, not a torch.nn.Module",
         fix=_ACCEPTED_FORMS,
     )
-
-
-def load_weights_file(module: nn.Module, weights: PathLike) -> None:
-    """Load a weights file into ``module`` in place, requiring every key and shape to match.
-
-    The file holds a state dict, or a dict with one under ``'state_dict'`` or ``'model'``.
-    Raises :class:`CheckpointError` listing up to five missing, unexpected and mismatched keys;
-    the module may then hold part of the file's weights and should be discarded.
-    """
-    state = _unwrap_state_dict(load_torch_weights(weights), weights)
-    expected = module.state_dict()
-    mismatched = [
-        key
-        for key, value in state.items()
-        if isinstance(expected.get(key), torch.Tensor)
-        and (not isinstance(value, torch.Tensor) or value.shape != expected[key].shape)
-    ]
-    loadable = {key: value for key, value in state.items() if key not in mismatched}
-    # load_state_dict knows which keys a module may lack (e.g. batch-norm counters of old files).
-    result = module.load_state_dict(loadable, strict=False)
-    missing = [key for key in result.missing_keys if key not in mismatched]
-    unexpected = list(result.unexpected_keys)
-    if not (missing or unexpected or mismatched):
-        return
-    parts = []
-    if missing:
-        parts.append(_key_list("missing from the file", missing, lambda key: _shape(expected[key])))
-    if unexpected:
-        parts.append(_key_list("not in the model", unexpected, lambda key: _shape(state[key])))
-    if mismatched:
-        parts.append(
-            _key_list(
-                "with a different shape",
-                mismatched,
-                lambda key: f"model {_shape(expected[key])}, file {_shape(state[key])}",
-            )
-        )
-    raise CheckpointError(
-        f"The weights file {str(weights)!r} does not fit the model: " + "; ".join(parts),
-        fix="check that SOURCE is the architecture these weights were saved from "
-        "(same model and number of classes)",
-    )
-
-
-def _unwrap_state_dict(content: object, weights: PathLike) -> Mapping[str, object]:
-    """The state dict in a loaded weights file: the file itself or its 'state_dict'/'model' entry."""
-    if isinstance(content, Mapping):
-        for key in ("state_dict", "model"):
-            if isinstance(content.get(key), Mapping):
-                return content[key]
-        if all(isinstance(key, str) for key in content):
-            return content
-    raise CheckpointError(
-        f"The weights file {str(weights)!r} holds a {type(content).__name__} that is not a state dict",
-        fix="save it with torch.save(model.state_dict(), path), or as a dict with the state dict under "
-        "'state_dict' or 'model'",
-    )
-
-
-def _key_list(title: str, keys: list[str], describe: Callable[[str], str]) -> str:
-    """'n title (key [shape], ...)' with at most five keys shown."""
-    shown = ", ".join(f"{key} {describe(key)}" for key in keys[:_LISTED_KEYS])
-    more = f", and {len(keys) - _LISTED_KEYS} more" if len(keys) > _LISTED_KEYS else ""
-    return f"{len(keys)} {title} ({shown}{more})"
-
-
-def _shape(value: object) -> str:
-    """A tensor's shape as '[a, b]', or the type of a non-tensor."""
-    if isinstance(value, torch.Tensor):
-        return str(list(value.shape))
-    return f"({type(value).__name__})"

@@ -51,8 +51,21 @@ def conv_fibre(group: Group, in_layout: Layout, out_layout: Layout, groups: int,
     )
 
 
-def _register(module: nn.Module, name: str, parametrization: nn.Module) -> None:
-    parametrize.register_parametrization(module, name, parametrization, unsafe=True)
+def _register(module: nn.Module, name: str, parametrization: nn.Module, project: bool = True) -> None:
+    """Parametrize ``module.name``; its base is the projection of the current value, or uninitialised.
+
+    Without ``project`` the current value is not projected (the caller overwrites the base anyway):
+    the parametrization's ``right_inverse``, which registration calls, is shadowed for that call by
+    one that returns an uninitialised base of the right shape, device and dtype.
+    """
+    if not project:
+        current = getattr(module, name)
+        shape = parametrization.base_shape
+        parametrization.right_inverse = lambda _: current.new_empty(shape)
+    try:
+        parametrize.register_parametrization(module, name, parametrization, unsafe=True)
+    finally:
+        parametrization.__dict__.pop("right_inverse", None)
 
 
 def _tie_bias(module: nn.Module, group: Group, out_layout: Layout) -> None:
@@ -61,8 +74,11 @@ def _tie_bias(module: nn.Module, group: Group, out_layout: Layout) -> None:
 
 
 def tie_conv(conv: nn.Conv2d | nn.ConvTranspose2d, group: Group, in_layout: Layout, out_layout: Layout,
-             where: str = "") -> nn.Conv2d | nn.ConvTranspose2d:
+             where: str = "", *, project: bool = True) -> nn.Conv2d | nn.ConvTranspose2d:
     """Tie ``conv`` in place from ``in_layout`` to ``out_layout``; its current weight is projected.
+
+    With ``project=False`` the tied weight's base is left uninitialised instead, for a caller that
+    loads weights into it next (projecting a value about to be overwritten costs a pass over it).
 
     ``conv`` must already have the channel counts of the layouts. Plain → plain 1×1 convs need no
     tying and are returned untouched. Under an approximate group (c8, d8, ...) spatial kernels are
@@ -81,20 +97,22 @@ def tie_conv(conv: nn.Conv2d | nn.ConvTranspose2d, group: Group, in_layout: Layo
     fibre = conv_fibre(group, in_layout, out_layout, conv.groups, where)
     tying = tied_weight(group, out_layout, fibre, tuple(conv.kernel_size), transposed)
     if not tying.is_trivial:
-        _register(conv, "weight", tying)
+        _register(conv, "weight", tying, project)
     _tie_bias(conv, group, out_layout)
     return conv
 
 
-def tie_linear(linear: nn.Linear, group: Group, in_layout: Layout, out_layout: Layout, where: str = "") -> nn.Linear:
-    """Tie ``linear`` in place (orbit→orbit, orbit→plain, flat→plain/orbit, plain→orbit)."""
+def tie_linear(linear: nn.Linear, group: Group, in_layout: Layout, out_layout: Layout, where: str = "", *,
+               project: bool = True) -> nn.Linear:
+    """Tie ``linear`` in place (orbit→orbit, orbit→plain, flat→plain/orbit, plain→orbit); ``project`` as in
+    :func:`tie_conv`."""
     if linear.in_features != in_layout.size(group) or linear.out_features != out_layout.size(group):
         raise WidthError(f"Linear has {linear.in_features}→{linear.out_features} features but the layouts "
                          f"{in_layout}→{out_layout} need {in_layout.size(group)}→{out_layout.size(group)}",
                          where=where or None, fix="resize the layer to the layout widths before tying it")
     tying = tied_weight(group, out_layout, in_layout, ())
     if not tying.is_trivial:
-        _register(linear, "weight", tying)
+        _register(linear, "weight", tying, project)
     _tie_bias(linear, group, out_layout)
     return linear
 
@@ -130,18 +148,24 @@ class OrbitBatchNorm(nn.modules.batchnorm._BatchNorm):
         if input.dim() < 2 or input.shape[1] != self.num_features * self.order:
             raise ValueError(f"expected {self.num_features * self.order} channels, got shape {tuple(input.shape)}")
         grouped = input.reshape(input.shape[0], self.num_features, -1)
-        return super().forward(grouped).reshape(input.shape)
+        # Batch norm returns a new tensor, so its reshape back need not be an autograd view of it. As a
+        # view, an in-place activation after this layer (ReLU(inplace=True)) would make autograd rebuild
+        # the gradient of the whole output through CopySlices: extra activation-sized copies per step.
+        return torch.ops.aten._unsafe_view(super().forward(grouped).contiguous(), input.shape)
 
     @classmethod
     def from_plain(cls, bn: nn.modules.batchnorm._BatchNorm, group: Group) -> "OrbitBatchNorm":
-        """The orbit-shared counterpart of ``bn`` (same channel count); statistics and affine averaged per orbit."""
+        """The orbit-shared counterpart of ``bn`` (same channel count, device and dtype); statistics and affine
+        averaged per orbit."""
         n = group.order
         if bn.num_features % n:
             raise WidthError(f"{type(bn).__name__} has {bn.num_features} channels, not a multiple of |G|={n}",
                              fix="use a budget that rounds widths to whole orbits")
         spatial = {nn.BatchNorm1d: 0, nn.BatchNorm2d: 2, nn.BatchNorm3d: 3}.get(type(bn), 2)
+        like = next((t for t in (bn.weight, bn.running_mean) if t is not None), None)
+        factory = {} if like is None else {"device": like.device, "dtype": like.dtype}
         out = cls(bn.num_features // n, n, spatial, eps=bn.eps, momentum=bn.momentum, affine=bn.affine,
-                  track_running_stats=bn.track_running_stats)
+                  track_running_stats=bn.track_running_stats, **factory)
         out.load_orbit_average(bn)
         return out.train(bn.training)
 
@@ -149,19 +173,21 @@ class OrbitBatchNorm(nn.modules.batchnorm._BatchNorm):
     def load_orbit_average(self, bn: nn.modules.batchnorm._BatchNorm) -> None:
         """Set statistics and affine from a plain batch norm of ``orbits·order`` channels, averaged per orbit.
 
-        The variance averages the per-slot second moments, so it is the variance of the pooled slots.
+        The variance is that of the pooled slots: the mean over the slots of each slot's variance plus
+        the squared deviation of its mean from the orbit mean (summing deviations, not E[x²] − E[x]²,
+        which cancels in float32 when the means are large beside the spread).
         """
-        def per_orbit(t: torch.Tensor) -> torch.Tensor:
-            return t.reshape(self.num_features, self.order).mean(1)
+        def per_slot(t: torch.Tensor) -> torch.Tensor:
+            return t.reshape(self.num_features, self.order)
 
         if self.affine:
-            self.weight.copy_(per_orbit(bn.weight))
-            self.bias.copy_(per_orbit(bn.bias))
+            self.weight.copy_(per_slot(bn.weight).mean(1))
+            self.bias.copy_(per_slot(bn.bias).mean(1))
         if self.track_running_stats and bn.running_mean is not None:
-            mean = per_orbit(bn.running_mean)
-            second = per_orbit(bn.running_var + bn.running_mean**2)
-            self.running_mean.copy_(mean)
-            self.running_var.copy_((second - mean**2).clamp_min(0))
+            means = per_slot(bn.running_mean)
+            mean = means.mean(1, keepdim=True)
+            self.running_mean.copy_(mean.squeeze(1))
+            self.running_var.copy_((per_slot(bn.running_var) + (means - mean) ** 2).mean(1))
             self.num_batches_tracked.copy_(bn.num_batches_tracked)
 
     def extra_repr(self) -> str:

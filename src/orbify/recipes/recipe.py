@@ -9,8 +9,9 @@ from types import MappingProxyType
 
 from torch import nn
 
-from orbify.errors import OptionError
-from orbify.files.sources import EXAMPLE_SOURCE, TORCHVISION_PREFIX
+from orbify.errors import OptionError, SourceError
+from orbify.files.source_arguments import TORCHVISION_PREFIX, TorchvisionSource
+from orbify.files.sources import EXAMPLE_SOURCE
 from orbify.graph.sizes import SizeChecker
 from orbify.recipes.schema import recipe_error
 
@@ -70,8 +71,11 @@ class Recipe:
         return self.settings["recalibrate"]["batches"]
 
     def applies_to(self, architecture: str) -> bool:
-        """Whether ``architecture`` (a name, ``torchvision:NAME`` or ``package.module:factory``) is listed."""
-        return _source(architecture) in self.sources
+        """Whether ``architecture`` (a name, ``torchvision:NAME`` or ``package.module:factory``) is listed.
+
+        A torchvision source counts by its name alone: ``torchvision:resnet18?num_classes=6`` is resnet18.
+        """
+        return _without_arguments(_source(architecture)) in self.sources
 
     def convert_options(self) -> dict[str, object]:
         """Keyword arguments for :func:`orbify.convert` (group, budget, head, init, match, stop_at) plus
@@ -125,3 +129,13 @@ def _source(architecture: str) -> str:
         return architecture
     return TORCHVISION_PREFIX + architecture
 
+
+def _without_arguments(source: str) -> str:
+    """``torchvision:NAME`` for a torchvision source with arguments (read by its grammar, name in lower case);
+    any other source, or text outside the grammar, as it is."""
+    if not source.startswith(TORCHVISION_PREFIX):
+        return source
+    try:
+        return TORCHVISION_PREFIX + TorchvisionSource.parse(source).name
+    except SourceError:
+        return source

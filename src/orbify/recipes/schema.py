@@ -25,7 +25,8 @@ from pathlib import Path
 
 from orbify.conversion.converter import convert
 from orbify.errors import GroupError, RecipeError
-from orbify.files.sources import EXAMPLE_SOURCE, FACTORY_PATTERN, TORCHVISION_PREFIX
+from orbify.files.source_arguments import TORCHVISION_PREFIX
+from orbify.files.sources import EXAMPLE_SOURCE, FACTORY_PATTERN
 from orbify.graph.plan import BUDGETS, HEADS, INITS
 from orbify.symmetry.groups import parse_group
 from orbify.tuning.options import SCHEDULES, TuneOptions

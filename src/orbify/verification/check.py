@@ -10,7 +10,9 @@
 * exactness of the output — invariance error ``max_g ‖F(g·x) − F(x)‖ / ‖F(x)‖`` (for a ``map`` head
   the equivariance error ``max_g ‖F(g·x) − g·F(x)‖ / ‖F(x)‖``);
 * drift from the original on the inputs as given (upright) — top-1 agreement and the mean
-  KL(softmax original ‖ softmax converted), plus accuracies when the inputs carry labels;
+  KL(softmax original ‖ softmax converted), plus accuracies when the inputs carry labels; only when the
+  original's trained weights are known (a plain architecture rebuilt from a converted file's recorded
+  source has fresh weights: its cost and input sizes are those of the original, its outputs are not);
 * input-size safety — whether every strided op samples a symmetric grid (:mod:`orbify.graph.sizes`).
 
 Errors are measured in float64 by default: random or deep backbones amplify float32 rounding
@@ -111,6 +113,7 @@ class CheckReport:
     roundings: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
     first_layer: FirstLayerFilters | None = None
+    original_weights_known: bool = True   # False: drift and the original's accuracy were not measured (None)
 
     @property
     def param_ratio(self) -> float:
@@ -145,7 +148,7 @@ class CheckReport:
 def check_model(converted: nn.Module, original: nn.Module, plan: ConversionPlan,
                 inputs: torch.Tensor | ImageSet | None = None, *, input_size: int | tuple[int, int] | None = None,
                 checkpoint_bytes: int | None = None, float64: bool = True, batch_size: int = 8,
-                seed: int = 0, safe_size_count: int = 3) -> CheckReport:
+                seed: int = 0, safe_size_count: int = 3, original_weights_known: bool = True) -> CheckReport:
     """Measure ``converted`` (from ``convert(original, ...)``, described by ``plan``) against ``original``.
 
     Args:
@@ -160,6 +163,11 @@ def check_model(converted: nn.Module, original: nn.Module, plan: ConversionPlan,
         seed: seed of the random inputs.
         safe_size_count: how many safe sizes nearest to an unsafe input size to look for (each size
             tried costs one shape propagation on the meta device); a safe size lists only itself.
+        original_weights_known: False when ``original`` is only the plain architecture with fresh weights
+            (rebuilt from the source a converted file records). Cost, exactness and input-size safety do not
+            depend on its weights and are measured as usual; the drift figures (top-1 agreement, mean KL,
+            accuracy before) are ``None`` and the first-layer filters are left out. The converted model's
+            accuracy is still measured when the inputs carry labels.
 
     Example (a tiny classifier; its converted output is invariant up to rounding):
 
@@ -186,7 +194,7 @@ def check_model(converted: nn.Module, original: nn.Module, plan: ConversionPlan,
     else:
         layer_errors, output_errors = _equivariance(converted32, layouts, group, images, batch_size, dense)
         output32 = output_errors
-    drift = _drift(original32, converted32, images, labels, batch_size)
+    drift = _drift(original32 if original_weights_known else None, converted32, images, labels, batch_size)
     refits = {layer.name: layer.error for layer in plan.calibration.layers} if plan.calibration else {}
     return CheckReport(
         group=group.name, exact_group=group.exact, elements=[element_name(group, g) for g in range(group.order)],
@@ -201,7 +209,8 @@ def check_model(converted: nn.Module, original: nn.Module, plan: ConversionPlan,
         size=_size_safety(converted, original, images.shape[1], tuple(images.shape[-2:]), safe_size_count),
         layers=[_layer_check(layer, layer_errors.get(layer.target), refits.get(layer.name)) for layer in plan.layers],
         roundings=list(plan.roundings), notes=list(plan.notes) + drift.pop("notes"),
-        first_layer=_first_layer_filters(converted, original, plan, group), **drift,
+        first_layer=_first_layer_filters(converted, original, plan, group) if original_weights_known else None,
+        original_weights_known=original_weights_known, **drift,
     )
 
 
@@ -254,8 +263,8 @@ def _equivariance(model: nn.Module, layouts: dict[str, Layout], group: Group, im
     """Relative errors for every element, per hooked layer (module path → its output layout) and of the output.
 
     Each error is ``sqrt(Σ‖f(g·x) − g·f(x)‖²) / sqrt(Σ‖f(x)‖²)`` summed over the batches, so it does not
-    depend on the batch size; the identity (element 0) is not run and counts as 0. A dense output moves with the input (``map`` head); otherwise it should not
-    change at all.
+    depend on the batch size; the identity (element 0) is not run and counts as 0. A dense output moves with
+    the input (``map`` head); otherwise it should not change at all.
     """
     order = group.order
     layer_diff = {target: [0.0] * order for target in layouts}
@@ -331,16 +340,20 @@ def _layer_check(layer, errors: list[float] | None, calibration_error: float | N
 
 
 # -- drift -------------------------------------------------------------------------------------------
-def _drift(original: nn.Module, converted: nn.Module, images: torch.Tensor, labels: torch.Tensor | None,
+def _drift(original: nn.Module | None, converted: nn.Module, images: torch.Tensor, labels: torch.Tensor | None,
            batch_size: int) -> dict:
     """Top-1 agreement, mean KL(softmax original ‖ softmax converted) and accuracies on upright inputs.
 
-    The class axis is dim 1; for dense outputs every pixel counts as one prediction.
+    The class axis is dim 1; for dense outputs every pixel counts as one prediction. Without an
+    ``original`` (its trained weights unknown) only the converted model's accuracy is measured.
     """
     with torch.no_grad():
-        before = torch.cat([_first_tensor(original(b)) for b in images.split(batch_size)])
         after = torch.cat([_first_tensor(converted(b)) for b in images.split(batch_size)])
+        before = None if original is None else torch.cat([_first_tensor(original(b)) for b in images.split(batch_size)])
     result = dict(top1_agreement=None, mean_kl=None, accuracy_before=None, accuracy_after=None, notes=[])
+    if before is None:
+        result["accuracy_after"] = _accuracy(after, labels)
+        return result
     if before.shape != after.shape or before.dim() < 2:
         result["notes"].append(f"no drift figures: the outputs differ in shape ({tuple(before.shape)} before, "
                                f"{tuple(after.shape)} after) or have no class axis")
@@ -349,11 +362,16 @@ def _drift(original: nn.Module, converted: nn.Module, images: torch.Tensor, labe
     log_q = F.log_softmax(after.double(), dim=1)
     result["top1_agreement"] = float((before.argmax(1) == after.argmax(1)).double().mean())
     result["mean_kl"] = float((log_p.exp() * (log_p - log_q)).sum(1).mean())
-    if labels is not None and before.dim() == 2 and int(labels.max()) < before.shape[1]:
-        labels = labels.to(before.device)
-        result["accuracy_before"] = float((before.argmax(1) == labels).double().mean())
-        result["accuracy_after"] = float((after.argmax(1) == labels).double().mean())
+    result["accuracy_before"] = _accuracy(before, labels)
+    result["accuracy_after"] = _accuracy(after, labels)
     return result
+
+
+def _accuracy(logits: torch.Tensor, labels: torch.Tensor | None) -> float | None:
+    """Top-1 accuracy of class scores ``(N, classes)``; None without labels, or labels outside the classes."""
+    if labels is None or logits.dim() != 2 or int(labels.max()) >= logits.shape[1]:
+        return None
+    return float((logits.argmax(1) == labels.to(logits.device)).double().mean())
 
 
 # -- sizes and filters -------------------------------------------------------------------------------

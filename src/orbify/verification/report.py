@@ -72,12 +72,7 @@ def check_sections(report: CheckReport) -> list[tuple[str, tuple[str, ...], list
             ("worst layer", f"{worst.name} ({error(worst.equivariance_error)})" if worst else "-"),
             ("group", f"{report.group} ({'exact' if report.exact_group else 'interpolated'} on the pixel grid)"),
         ]),
-        ("Drift from the original (upright inputs)", ("measure", "value"), [
-            ("top-1 agreement", percent(report.top1_agreement)),
-            ("mean KL(original ‖ converted)", "-" if report.mean_kl is None else f"{report.mean_kl:.4g}"),
-            ("accuracy before → after", f"{percent(report.accuracy_before)} → {percent(report.accuracy_after)}"),
-            ("inputs", report.inputs),
-        ]),
+        ("Drift from the original (upright inputs)", ("measure", "value"), _drift_rows(report)),
         ("Input size", ("measure", "value"), [
             ("size", f"{size.input_size[0]}×{size.input_size[1]}: " + ("safe" if size.safe else "NOT safe")),
             ("first strided layer that breaks", size.first_violation_detail or "-"),
@@ -90,6 +85,25 @@ def check_sections(report: CheckReport) -> list[tuple[str, tuple[str, ...], list
     if notes:
         sections.append(("Notes", ("note",), [(note,) for note in notes]))
     return sections
+
+
+NOT_MEASURED = "not measured"
+"""What the drift cells read when the original's trained weights were not given (never a zero)."""
+
+
+def _drift_rows(report: CheckReport) -> list[tuple[str, str]]:
+    """Agreement, KL and accuracies; "not measured" for the original's figures when its weights are unknown."""
+    known = report.original_weights_known
+    def measured(text: str) -> str:
+        return text if known else NOT_MEASURED
+    return [
+        ("top-1 agreement", measured(percent(report.top1_agreement))),
+        ("mean KL(original ‖ converted)",
+         measured("-" if report.mean_kl is None else f"{report.mean_kl:.4g}")),
+        ("accuracy before → after",
+         f"{measured(percent(report.accuracy_before))} → {percent(report.accuracy_after)}"),
+        ("inputs", report.inputs),
+    ] + ([] if known else [("why not measured", "the original's trained weights were not given")])
 
 
 def _layer_section(report: CheckReport) -> tuple[str, tuple[str, ...], list[tuple[str, ...]]]:
@@ -123,13 +137,22 @@ def check_renderable(report: CheckReport) -> RenderGroup:
     return RenderGroup(*tables)
 
 
+def check_title(report: CheckReport) -> str:
+    """``Conversion check: d4, budget channels, head invariant``."""
+    return f"Conversion check: {report.group}, budget {report.budget}, head {report.head}"
+
+
+def check_headline(report: CheckReport) -> str:
+    """One sentence with the output error, the cost ratios and the input size's verdict."""
+    verdict = "safe" if report.size.safe else "NOT safe"
+    return (f"Output {report.output_property} error {error(report.invariance_error)} ({report.precision}), "
+            f"parameters {ratio(report.param_ratio)}, MACs {ratio(report.mac_ratio)}, "
+            f"input size {report.size.input_size[0]}×{report.size.input_size[1]} {verdict}.")
+
+
 def check_markdown(report: CheckReport) -> str:
     """A markdown report for a lab notebook or a pull request."""
-    lines = [f"# Conversion check: {report.group}, budget {report.budget}, head {report.head}", ""]
-    verdict = "safe" if report.size.safe else "NOT safe"
-    lines += [f"Output {report.output_property} error {error(report.invariance_error)} ({report.precision}), "
-              f"parameters {ratio(report.param_ratio)}, MACs {ratio(report.mac_ratio)}, "
-              f"input size {report.size.input_size[0]}×{report.size.input_size[1]} {verdict}.", ""]
+    lines = [f"# {check_title(report)}", "", check_headline(report), ""]
     worst = report.worst_layer
     for title, header, rows in check_sections(report):
         lines += [f"## {title}", ""]
@@ -277,32 +300,44 @@ PLOT_FILES = ("layer_errors.png", "first_layer_filters.png")
 
 
 def plot_check(report: CheckReport, directory: str | Path, *, force: bool = False) -> list[Path]:
-    """Write the per-layer error plot and, when there is one, the first layer's filter grid into ``directory``.
+    """Write the plots of :func:`check_plot_images` into ``directory`` (created when missing).
+
+    Raises OptionError without matplotlib, and OutputError for an existing plot without ``force``.
+    """
+    images = check_plot_images(report)
+    if images is None:
+        raise OptionError("Plots need matplotlib, which is not installed", where="option --plot",
+                          fix="pip install 'orbify[plot]' (or pip install matplotlib), or leave out --plot")
+    folder = Path(directory)
+    folder.mkdir(parents=True, exist_ok=True)
+    return [atomic_write(folder / name, lambda stream, png=png: stream.write(png), force=force)
+            for name, png in images.items()]
+
+
+def check_plot_images(report: CheckReport) -> dict[str, bytes] | None:
+    """The check's plots as PNG bytes by file name (a name of ``PLOT_FILES``); None without matplotlib.
 
     ``layer_errors.png``: equivariance error and weight residual per layer on a log scale.
-    ``first_layer_filters.png``: the original filters of the first converted conv beside its tied
-    orbits (one row per orbit, one column per group element). Raises OptionError without matplotlib.
+    ``first_layer_filters.png`` (when the report has the filters): the original filters of the first
+    converted conv beside its tied orbits (one row per orbit, one column per group element).
     """
     try:
         import matplotlib
-    except ImportError as missing:
-        raise OptionError("Plots need matplotlib, which is not installed", where="option --plot",
-                          fix="pip install 'orbify[plot]' (or pip install matplotlib), or leave out --plot") from missing
+    except ImportError:
+        return None
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
 
-    folder = Path(directory)
-    folder.mkdir(parents=True, exist_ok=True)
     figures = [("layer_errors.png", _layer_error_figure(plt, report))]
     if report.first_layer is not None:
         figures.append(("first_layer_filters.png", _filter_figure(plt, report)))
-    written = []
+    images = {}
     for name, figure in figures:
         buffer = io.BytesIO()
         figure.savefig(buffer, format="png", dpi=120, bbox_inches="tight")
         plt.close(figure)
-        written.append(atomic_write(folder / name, lambda stream, png=buffer.getvalue(): stream.write(png), force=force))
-    return written
+        images[name] = buffer.getvalue()
+    return images
 
 
 def _layer_error_figure(plt, report: CheckReport):
