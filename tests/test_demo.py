@@ -41,7 +41,7 @@ def test_orbify_demo_end_to_end(tmp_path):
     result = CliRunner().invoke(app, ["demo", "--out", str(tmp_path), "--quiet"], env={"COLUMNS": "160"})
     assert result.exit_code == 0, result.output
     figures = json.loads((tmp_path / "results.json").read_text())
-    assert "init calibrated" in " ".join(result.output.split()) and "ms per tile" in result.output
+    assert "init calibrated" in " ".join(result.output.split())
     # the table's rows, from its markdown copy (the terminal may wrap long row labels, whatever COLUMNS says)
     check_the_table((tmp_path / "results.md").read_text(), figures)
     check_the_test_time_average(figures)
