@@ -138,7 +138,7 @@ class TensorTiles(Tiles):
         self.images = images
         self.labels = labels.long() if labels is not None else None
         self.classes = classes
-        digest = hashlib.sha256(images.detach().cpu().contiguous().numpy().tobytes())
+        digest = hashlib.sha256(images.detach().cpu().contiguous().numpy())   # hashed in place, not copied
         if labels is not None:
             digest.update(self.labels.numpy().tobytes())
         self.fingerprint = f"tensor {tuple(images.shape)} {images.dtype} {digest.hexdigest()}"

@@ -62,7 +62,7 @@ def weights_digest(model: nn.Module) -> str:
     for name, tensor in model.state_dict().items():
         tensor = tensor.detach().cpu().contiguous()
         digest.update(f"{name}|{tensor.dtype}|{tuple(tensor.shape)}".encode())
-        digest.update(tensor.reshape(-1).view(torch.uint8).numpy().tobytes())
+        digest.update(tensor.reshape(-1).view(torch.uint8).numpy())
     return digest.hexdigest()
 
 
