@@ -166,3 +166,27 @@ def sha256_file(path: PathLike) -> str:
         for block in iter(lambda: stream.read(1 << 20), b""):
             digest.update(block)
     return digest.hexdigest()
+
+
+SAFETENSORS_SUFFIX = ".safetensors"
+
+
+def load_weights_any(path: PathLike, *, what: str = "weights file") -> object:
+    """A weights file's content: a ``.safetensors`` file (no pickle at all) as a dict of tensors, anything else
+    through :func:`load_torch_weights`. Raises :class:`CheckpointError` naming the file for a missing, empty or
+    damaged file, or a ``.safetensors`` file without the safetensors package installed."""
+    source = Path(path)
+    if source.suffix.lower() != SAFETENSORS_SUFFIX:
+        return load_torch_weights(source, what=what)
+    if not source.is_file() or source.stat().st_size == 0:
+        state = "does not exist" if not source.exists() else "is empty" if source.is_file() else "is not a file"
+        raise CheckpointError(f"The {what} {str(source)!r} {state}", fix="check the path")
+    try:
+        from safetensors.torch import load_file
+    except ImportError as error:
+        raise CheckpointError(f"Reading the {what} {str(source)!r} needs the safetensors package",
+                              fix="pip install 'orbify[timm]' (or pip install safetensors)") from error
+    try:
+        return load_file(str(source), device="cpu")
+    except Exception as error:   # safetensors reports a damaged header or truncated data with its own error types
+        raise damaged_file_error(source, what, error) from error

@@ -8,6 +8,8 @@ may name on its own only what a registry vouches for:
 - ``torchvision:NAME`` (with or without ``?ARG=VALUE`` arguments): the name is looked up in
   torchvision's model registry and each argument, a literal, checked against the builder's
   signature before anything is built;
+- ``timm:NAME``: the name is looked up in timm's registry (``timm.is_model``) before
+  ``timm.create_model(NAME, pretrained=False)`` is called, when timm is installed;
 - ``example`` (and the factory references of the bundled example that older files record);
 - leaf module types defined in torch or torchvision modules that are already imported (taking
   them runs no new code).
@@ -26,6 +28,7 @@ from pathlib import Path
 from orbify.errors import TrustError
 from orbify.files.source_arguments import TORCHVISION_PREFIX
 from orbify.files.sources import BUNDLED_FACTORIES, FACTORY_PATTERN
+from orbify.files.timm_source import TIMM_PREFIX
 
 _LIBRARIES = ("torch", "torchvision")
 
@@ -49,7 +52,7 @@ class Consent:
 
 def names_only_registered_code(reference: str) -> bool:
     """True for a reference a file may name on its own (see the module docstring)."""
-    return reference.startswith(TORCHVISION_PREFIX) or reference in BUNDLED_FACTORIES
+    return reference.startswith((TORCHVISION_PREFIX, TIMM_PREFIX)) or reference in BUNDLED_FACTORIES
 
 
 def require_consent(file: Path, reference: str, leaf_types: list[str], consent: Consent) -> None:

@@ -7,6 +7,9 @@ A SOURCE is one of, tried in this order:
     (never downloaded; pretrained weights come from a separate weights file). Arguments set what
     the builder takes, e.g. ``torchvision:resnet18?num_classes=6`` for a fine-tuned head; each
     value is a literal (``6``, ``0.5``, ``true``, a plain word), never evaluated.
+``timm:NAME``
+    An architecture of the timm library, built with ``pretrained=False`` (never downloaded;
+    :mod:`orbify.files.timm_source`); needs ``orbify[timm]``.
 ``example``
     The bundled example CNN (:mod:`orbify.example`) with its shipped weights; rebuilt from a
     reference, the architecture alone.
@@ -45,6 +48,7 @@ from torch import nn
 from orbify.common.safe_io import PathLike, damaged_file_error, load_torch_weights, unsafe_globals
 from orbify.errors import SourceError, TrustError
 from orbify.files.source_arguments import TORCHVISION_PREFIX, build_torchvision
+from orbify.files.timm_source import TIMM_PREFIX, build_timm
 from orbify.files.weights import load_weights_file
 
 EXAMPLE_SOURCE = "example"
@@ -58,7 +62,7 @@ references that files written before ``example`` was a reference of its own reco
 _EXAMPLE_WITH_WEIGHTS = "orbify.example:load_example_model"
 FACTORY_PATTERN = re.compile(r"^(?P<module>[A-Za-z_][\w.]*):(?P<attribute>[A-Za-z_][\w.]*)$")
 _ACCEPTED_FORMS = (
-    "give torchvision:NAME (e.g. torchvision:resnet18), example, package.module:factory, "
+    "give torchvision:NAME (e.g. torchvision:resnet18), timm:NAME, example, package.module:factory, "
     "or the path of a model file"
 )
 
@@ -146,6 +150,8 @@ def rebuild(reference: str, *, working_directory: bool = False) -> nn.Module:
     """
     if reference.startswith(TORCHVISION_PREFIX):
         module = build_torchvision(reference)[0]
+    elif reference.startswith(TIMM_PREFIX):
+        module = build_timm(reference)[0]
     elif reference in BUNDLED_FACTORIES:
         module = _build_factory(BUNDLED_FACTORIES[reference], working_directory=False)
     elif FACTORY_PATTERN.match(reference):
@@ -153,7 +159,7 @@ def rebuild(reference: str, *, working_directory: bool = False) -> nn.Module:
     else:
         raise SourceError(
             f"{reference!r} is not a reference that can be rebuilt",
-            fix="use torchvision:NAME, example or package.module:factory",
+            fix="use torchvision:NAME, timm:NAME, example or package.module:factory",
         )
     return module.eval()
 
@@ -168,6 +174,8 @@ def usual_input_size(source: str) -> tuple[int, str]:
         return EXAMPLE_SIZE, "the bundled example's tile size"
     if source.startswith(TORCHVISION_PREFIX):
         return IMAGENET_SIZE, "the usual input of torchvision's ImageNet backbones"
+    if source.startswith(TIMM_PREFIX):
+        return IMAGENET_SIZE, "the usual input of timm's ImageNet backbones"
     return IMAGENET_SIZE, "the usual input of ImageNet backbones, assumed for a model of unknown origin"
 
 
@@ -177,6 +185,9 @@ def _build(spec: str, *, trust_pickle: bool, trust_source: bool) -> LoadedSource
         raise SourceError("No model source was given", fix=_ACCEPTED_FORMS)
     if spec.startswith(TORCHVISION_PREFIX):
         module, reference = build_torchvision(spec)
+        return LoadedSource(module.eval(), reference)
+    if spec.startswith(TIMM_PREFIX):
+        module, reference = build_timm(spec)
         return LoadedSource(module.eval(), reference)
     if spec == EXAMPLE_SOURCE:
         return LoadedSource(_build_factory(_EXAMPLE_WITH_WEIGHTS, working_directory=False), EXAMPLE_SOURCE)

@@ -17,7 +17,7 @@ from typing import Callable
 import torch
 from torch import nn
 
-from orbify.common.safe_io import PathLike, load_torch_weights
+from orbify.common.safe_io import PathLike, load_weights_any
 from orbify.errors import CheckpointError, SourceError
 from orbify.files.source_arguments import (
     TORCHVISION_PREFIX,
@@ -36,7 +36,8 @@ _CHANNEL_ARGUMENTS = ("in_chans", "in_channels", "input_channels", "num_channels
 def load_weights_file(module: nn.Module, weights: PathLike, *, reference: str | None = None) -> tuple[str, ...]:
     """Load a weights file into ``module`` in place, requiring every key and shape to match; return notes.
 
-    The file holds a state dict, or a dict with one under ``'state_dict'``, ``'model'`` or another
+    The file is a ``.safetensors`` file (read without pickle) or a ``torch.save`` file read with
+    ``weights_only=True``; it holds a state dict, or a dict with one under ``'state_dict'``, ``'model'`` or another
     single entry holding only tensors (such as ``'model_state_dict'``). Entries that are not tensors
     and not keys of the model (``epoch``, optimizer state) are ignored. When every key carries one
     dotted prefix (``module.`` from DistributedDataParallel, ``model.`` from training wrappers) and the
@@ -49,7 +50,7 @@ def load_weights_file(module: nn.Module, weights: PathLike, *, reference: str | 
     of the file's weights and should be discarded.
     """
     expected = module.state_dict()
-    state, ignored = _weights_only(_unwrap_state_dict(load_torch_weights(weights), weights), expected)
+    state, ignored = _weights_only(_unwrap_state_dict(load_weights_any(weights), weights), expected)
     prefix = _wrapper_prefix(list(state), set(expected))
     if prefix is not None:
         state = {key[len(prefix):]: value for key, value in state.items()}
