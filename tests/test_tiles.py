@@ -107,7 +107,7 @@ def test_unlabelled_forms_give_the_images_of_read_images(data, form, preparation
     tiles = open_tiles(data / form, preparation=preparation)
     images, labels = _all_items(tiles)
     torch.testing.assert_close(images, expected.images)
-    assert labels == [UNLABELLED] * len(tiles) and tiles.labels is None and not tiles.has_labels
+    assert labels == [UNLABELLED] * len(tiles) and tiles.labels is None
 
 
 def test_npy_items_equal_numpy_and_the_array_stays_memory_mapped(data):

@@ -186,10 +186,14 @@ class Preparing:
     std: list[float] | None
     limit: int | None
 
-    def open(self, size: int, channels: int) -> tuple[Tiles, Tiles | None]:
-        """The training and validation tiles, prepared at ``size`` with ``channels``."""
+    def open(self, size: int | None, channels: int) -> tuple[Tiles, Tiles | None]:
+        """The training and validation tiles, prepared at ``size`` (None: the first training image's) with
+        ``channels``."""
         preparation = Preparation(channels, size, _tuple(self.mean), _tuple(self.std))
         train = open_tiles(self.data, preparation=preparation, limit=self.limit)
+        if size is None:
+            preparation = Preparation(channels, train[0][0].shape[-1], _tuple(self.mean), _tuple(self.std))
+            train = train.with_preparation(size=preparation.size)
         return train, open_tiles(self.val, preparation=preparation) if self.val is not None else None
 
 
@@ -220,8 +224,8 @@ def read_inputs(model: str, original: str | None, weights: Path | None, trust: T
     require_reference(loaded.reference, model)
     teacher = loaded.module
     channels = preparing.channels or input_channels(teacher)
-    size = preparing.size or preparing.open(None, channels)[0][0][0].shape[-1]
-    train, val = preparing.open(size, channels)
+    train, val = preparing.open(preparing.size, channels)
+    size = train.preparation.size
     checker = SizeChecker(teacher, channels)
     if not quiet and not checker.is_safe(size):
         nearby = ", ".join(map(str, checker.safe_sizes(size, 3)))

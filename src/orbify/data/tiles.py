@@ -102,11 +102,6 @@ class Tiles(Dataset):
         image, label = self.read(int(index))
         return self.preparation.apply(image, self.name(int(index))), int(label)
 
-    @property
-    def has_labels(self) -> bool:
-        """True when the samples carry labels (all of them, or the ``labels`` attribute is set)."""
-        return self.labels is not None
-
     def with_preparation(self, **changes) -> "Tiles":
         """A shallow copy whose preparation has ``changes`` (e.g. ``augmentation=...``); the samples are shared."""
         twin = copy.copy(self)
@@ -179,13 +174,6 @@ class DatasetTiles(Tiles):
             raise DataError(f"Item {index} of the data set is not a float image of shape (C, H, W)",
                             where=f"dataset[{index}]", fix="return a float (C, H, W) tensor, or (image, label)")
         return image, int(label)
-
-    @property
-    def has_labels(self) -> bool:
-        return self.labels is not None or self._first_label() != UNLABELLED
-
-    def _first_label(self) -> int:
-        return self.read(0)[1] if len(self) else UNLABELLED
 
     def name(self, index: int) -> str:
         return f"dataset[{index}]"

@@ -165,7 +165,8 @@ def _augmented(tiles: Tiles, level: str, group: Group) -> Tiles:
     """The tiles with the augmentation of ``level`` (sized to their first image)."""
     if level == "none":
         return tiles
-    channels, size = tiles[0][0].shape[0], tiles[0][0].shape[-1]
+    first = tiles[0][0]
+    channels, size = first.shape[0], first.shape[-1]
     return tiles.with_preparation(augmentation=augmentation(level, group, size, channels))
 
 
