@@ -31,35 +31,43 @@ from orbify.common.modes import module_mode
 from orbify.common.options import check_choice
 from orbify.errors import InputShapeError
 from orbify.symmetry.groups import Group, parse_group
+from orbify.verification.segmentation import dense_output
 
 VIEW_COMBINATIONS = ("probability", "logit", "most-confident")
 
 
 def combine_views(logits: torch.Tensor, how: str) -> torch.Tensor:
-    """Combine the logits of every view, shape (views, batch, classes), into log-probabilities (batch, classes)."""
+    """Combine the logits of every view, shape (views, batch, classes, *pixels), into log-probabilities
+    (batch, classes, *pixels); for a dense map every pixel is combined on its own."""
     check_choice("view combination", how, VIEW_COMBINATIONS)
-    log_probabilities = logits.log_softmax(-1)
+    log_probabilities = logits.log_softmax(2)
     if how == "probability":
         return log_probabilities.logsumexp(0) - math.log(logits.shape[0])
     if how == "logit":
-        return logits.mean(0).log_softmax(-1)
-    best_view = log_probabilities.amax(-1).argmax(0)   # (batch,)
-    return log_probabilities.gather(0, best_view[None, :, None].expand(1, *logits.shape[1:]))[0]
+        return logits.mean(0).log_softmax(1)
+    best_view = log_probabilities.amax(2, keepdim=True).argmax(0, keepdim=True)   # (1, batch, 1, *pixels)
+    return log_probabilities.gather(0, best_view.expand(1, *logits.shape[1:]))[0]
 
 
 def view_logits(model: nn.Module, group: Group, images: torch.Tensor) -> torch.Tensor:
-    """``model``'s logits on every view g·x of a batch, shape (|G|, batch, classes), in one forward pass."""
+    """``model``'s logits on every view g·x of a batch, in one forward pass: shape (|G|, batch, classes) for a
+    classifier; for a dense model (|G|, batch, classes, H, W), each view's map moved back by g⁻¹ so that its
+    pixels line up with the image as given (docs/design.md §18)."""
     views = torch.cat([group.act_grid(g, images) for g in range(group.order)])
-    logits = model(views)
-    if logits.dim() != 2:
+    logits = dense_output(model(views))
+    if logits.dim() not in (2, 4):
         raise InputShapeError(f"The original model returns a tensor of shape {tuple(logits.shape)}; distillation "
-                              "needs class scores of shape (batch, classes)",
-                              fix="tune classifiers only (models with an invariant head)")
-    return logits.unflatten(0, (group.order, images.shape[0]))
+                              "needs class scores (batch, classes) or maps (batch, classes, H, W)",
+                              fix="tune classifiers or dense models whose output has a class axis")
+    logits = logits.unflatten(0, (group.order, images.shape[0]))
+    if logits.dim() == 5:
+        logits = torch.stack([group.act_grid(group.inverse(g), logits[g]) for g in range(group.order)])
+    return logits
 
 
 class GroupAveraged(nn.Module):
-    """``model`` made invariant over ``group`` by combining its views (test-time averaging); returns log-probabilities.
+    """``model`` made invariant over ``group`` by combining its views (test-time averaging); returns log-probabilities
+    (for a dense model: a map equivariant under ``group``, each pixel combined over the views moved back).
 
     It costs |G| forward passes of ``model`` per image. ``views`` is one of :data:`VIEW_COMBINATIONS`.
     """
@@ -77,8 +85,9 @@ class GroupAveraged(nn.Module):
 
 @dataclass
 class TeacherBatch:
-    """The teacher on one batch: ``log_probabilities`` (batch, classes) under the chosen combination, and the
-    predicted class of every combination (``top_class``, (batch,) each), so that the choice can be judged."""
+    """The teacher on one batch: ``log_probabilities`` (batch, classes, *pixels) under the chosen combination, and
+    the predicted class of every combination (``top_class``, (batch, *pixels) each), so that the choice can be
+    judged."""
 
     log_probabilities: torch.Tensor
     top_class: dict[str, torch.Tensor]
@@ -91,4 +100,4 @@ def teach(model: nn.Module, group: Group, images: torch.Tensor, views: str) -> T
     with module_mode(model, training=False):
         logits = view_logits(model, group, images).float()
     combined = {how: combine_views(logits, how) for how in VIEW_COMBINATIONS}
-    return TeacherBatch(combined[views], {how: rows.argmax(-1) for how, rows in combined.items()})
+    return TeacherBatch(combined[views], {how: rows.argmax(1) for how, rows in combined.items()})
