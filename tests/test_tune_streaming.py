@@ -107,7 +107,8 @@ def test_a_damaged_cache_is_detected_and_never_used(tmp_path, damage):
 def test_augmentation_needs_the_online_teacher():
     original, (images, labels) = tiny_original(), tiny_data()
     with pytest.raises(OptionError, match="cached teacher cannot serve augmented images"):
-        _tune(tiny_student(original), original, images, labels, augment="light")
+        _tune(tiny_student(original), original, images, labels, augment="light", teacher="cached")
+    assert _tune(tiny_student(original), original, images, labels, augment="light").teacher_online   # auto: online
 
 
 def test_each_process_reads_a_disjoint_share_of_every_epoch():
@@ -224,5 +225,5 @@ def test_the_command_takes_a_manifest_with_a_validation_split(tmp_path):
     assert "24 training, 6 held-out images" in flat and "teacher: online" in flat
     assert out.is_file() and not (tmp_path / "tuned.orb.teacher").exists()
     refused = _cli("tune", "test_tune:tiny_original", "--weights", tmp_path / "original.pt", "--data",
-                   tmp_path / "list.csv", "--augment", "light", "-o", tmp_path / "again.orb")
+                   tmp_path / "list.csv", "--augment", "light", "--teacher", "cached", "-o", tmp_path / "again.orb")
     assert refused.exit_code == 2 and "cached teacher cannot serve augmented images" in " ".join(refused.output.split())

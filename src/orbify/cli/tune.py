@@ -37,7 +37,7 @@ from orbify.recipes.schema import CALIBRATION_IMAGES, CONVERT_DEFAULTS
 from orbify.tuning.distributed import process_rank
 from orbify.tuning.loop import tune
 from orbify.tuning.options import DEFAULT_VAL_LIMIT, SCHEDULES, RunSettings, TuneOptions
-from orbify.tuning.records import TuneResult
+from orbify.tuning.records import Evaluation, TuneResult
 from orbify.tuning.teacher import VIEW_COMBINATIONS
 from orbify.verification.report import write_text
 
@@ -67,9 +67,11 @@ def tune_command(
     model: str = typer.Argument(..., help="A converted-model file (.orb), or a plain model SOURCE to convert first "
                                 "(torchvision:NAME, package.module:factory, 'example', a pickled model)."),
     data: Path = typer.Option(..., "--data", help="The training images: a folder (one sub-folder per class gives "
-                              "labels), a CSV manifest (path, optional label and split columns), an .npy array "
-                              "(memory-mapped), an .npz file (read whole: images, optional labels), or tar shards "
-                              "('tiles-{0000..0099}.tar'; needs orbify[shards]). Read lazily in --workers processes."),
+                              "labels; sub-folders images/ and masks/ paired by file stem give masks), a CSV manifest "
+                              "(path, optional label, mask and split columns), an .npy array (memory-mapped), an .npz "
+                              "file (read whole: images, optional labels or masks), or tar shards "
+                              "('tiles-{0000..0099}.tar'; needs orbify[shards]). Read lazily in --workers processes. "
+                              "Masks are PNGs of class indices (grey or palette)."),
     val: Optional[Path] = typer.Option(None, "--val", help="Separate validation images (the same forms); default: a "
                                        "manifest's 'val' rows, else the --holdout share of --data."),
     val_limit: int = typer.Option(DEFAULT_VAL_LIMIT, "--val-limit", min=1, help="Evaluate at most this many "
@@ -79,7 +81,9 @@ def tune_command(
                                 "jitter and blur); needs --teacher online."),
     teacher: str = typer.Option(_TUNE.teacher, "--teacher", help="cached: the original averaged over the group runs "
                                 "once per image and its outputs are kept on disk (--teacher-cache); online: it runs on "
-                                "every batch (|G| forward passes per step; needed with --augment)."),
+                                "every batch (|G| forward passes per step; needed with --augment); auto: cached for a "
+                                "classifier, online for a dense model (whose cache holds a map per image) or with "
+                                "--augment."),
     teacher_cache: Optional[Path] = typer.Option(None, "--teacher-cache", help="Folder of the cached teacher outputs "
                                                  "(default: OUT.teacher); reused by a later run with the same original, "
                                                  "group, views, data and preprocessing."),
@@ -110,7 +114,15 @@ def tune_command(
                               "upright images only: usually far better there)."),
     label_weight: float = typer.Option(_TUNE.label_weight, "--label-weight", min=0.0, help="Weight of the cross-entropy on labels "
                                        "added to the distillation loss (0: distillation only)."),
-    use_labels: bool = typer.Option(True, "--labels/--no-labels", help="Use the data's labels when it has them."),
+    use_labels: bool = typer.Option(True, "--labels/--no-labels", help="Use the data's labels (or masks) when it has "
+                                    "them."),
+    ignore_index: int = typer.Option(_TUNE.ignore_index, "--ignore-index", help="The mask value of pixels without a "
+                                     "label: left out of the loss and the scores."),
+    class_weights: Optional[str] = typer.Option(None, "--class-weights", help="One weight per class for the "
+                                                "cross-entropy on labels or masks, e.g. 0.2,1,1,4 (rare classes "
+                                                "weighed up)."),
+    head: str = typer.Option("invariant", "--head", help="With a plain SOURCE: invariant (a classifier) or map (a "
+                             "dense model such as a segmenter, equivariant); a converted MODEL keeps its own."),
     schedule: str = typer.Option(_TUNE.schedule, "--schedule", help=f"Learning-rate schedule: {', '.join(SCHEDULES)}."),
     holdout: float = typer.Option(_TUNE.holdout_fraction, "--holdout", help="Share of the images held out for evaluation."),
     seed: int = typer.Option(_TUNE.seed, "--seed", help="Seed of the split, the batch order and every random draw."),
@@ -151,11 +163,12 @@ def tune_command(
     TuneOptions(augment=augment, teacher=teacher).validate()
     preparing = Preparing(data, val, input_size, channels, parse_floats(mean, "--mean"), parse_floats(std, "--std"),
                           limit)
-    inputs = read_inputs(model, original, weights, Trust(trust_pickle, trust_source), group, budget, init, preparing,
-                         quiet=not main)
+    inputs = read_inputs(model, original, weights, Trust(trust_pickle, trust_source), (group, budget, head, init),
+                         preparing, quiet=not main)
     result = tune(inputs.student, inputs.teacher, inputs.plan.group, inputs.data, val=inputs.val, epochs=epochs, lr=lr,
                   batch_size=batch_size, view_combination=views, label_weight=label_weight, holdout_fraction=holdout,
                   schedule=schedule, seed=seed, augment=augment, teacher=teacher, use_labels=use_labels,
+                  ignore_index=ignore_index, class_weights=parse_floats(class_weights, "--class-weights"),
                   checkpoint_path=checkpoint or out.with_name(out.name + ".checkpoint"), resume=resume, force=force,
                   recalibrate=recalibrate, progress=main, device=device, workers=workers,
                   checkpoint_every=checkpoint_every, skip_unreadable=skip_unreadable, precision=precision,
@@ -197,9 +210,10 @@ class Preparing:
         return train, open_tiles(self.val, preparation=preparation) if self.val is not None else None
 
 
-def read_inputs(model: str, original: str | None, weights: Path | None, trust: Trust, group: str, budget: str,
-                init: str, preparing: Preparing, quiet: bool) -> TuneInputs:
-    """The student, its plan, the teacher, the reference to save with the result and the data."""
+def read_inputs(model: str, original: str | None, weights: Path | None, trust: Trust,
+                conversion: tuple[str, str, str, str], preparing: Preparing, quiet: bool) -> TuneInputs:
+    """The student, its plan, the teacher, the reference to save with the result and the data; ``conversion`` is
+    (group, budget, head, init) for a plain SOURCE."""
     if is_converted_source(model):
         converted = read_converted(model, trust, original)
         reference = converted.metadata["source"]
@@ -232,11 +246,12 @@ def read_inputs(model: str, original: str | None, weights: Path | None, trust: T
         console.print(f"[yellow]warning:[/] the images' size {size} is not safe for this model "
                       f"({checker.violations(size)[0]}), so the converted model is not exactly invariant at it; "
                       f"safe sizes nearby: {nearby or 'none found'} (--input-size)", highlight=False)
+    group, budget, head, init = conversion
     calibration = None
     if init == "calibrated":
         chosen = evenly_spaced(len(train), CALIBRATION_IMAGES)
         calibration = torch.stack([train[index][0] for index in chosen])
-    student, plan = convert(teacher, group, budget, "invariant", train[0][0][None], init=init,
+    student, plan = convert(teacher, group, budget, head, train[0][0][None], init=init,
                             calibration=calibration, progress=not quiet)
     return TuneInputs(student, plan, teacher, loaded.reference, train, val)
 
@@ -263,7 +278,7 @@ def _require_weights(source: str, weights: Path | None) -> None:
 
 def teacher_line(result: TuneResult) -> str:
     """What the teacher cost: the pass that cached it, the time a reused cache saved, or the online teacher."""
-    if result.options.teacher == "online":
+    if result.teacher_online:
         return "teacher: online, |G| forward passes of the original per training step"
     if result.teacher_reused:
         return f"teacher: cached outputs reused, saving the {result.teacher_seconds:.1f} s pass that computed them"
@@ -271,16 +286,25 @@ def teacher_line(result: TuneResult) -> str:
 
 
 def history_table(result: TuneResult) -> Table:
-    """One row per epoch: training loss, held-out loss and accuracy (or agreement) upright and transformed."""
+    """One row per epoch: training loss, held-out loss and accuracy (or agreement) upright and transformed; for a
+    dense model per-pixel figures and the mean IoU upright, transformed (mean over the elements) and worst."""
     measure = result.final.measure
-    table = Table("epoch", "train loss", "held-out loss", f"{measure} upright", f"{measure} transformed", "seconds",
-                  "images/s",
+    dense = result.final.segmentation is not None
+    columns = ["epoch", "train loss", "held-out loss", f"{measure} upright", f"{measure} transformed"]
+    columns += ["mean IoU upright", "mean IoU transformed", "mean IoU worst"] if dense else []
+    table = Table(*columns, "seconds", "images/s",
                   title=f"tuning on {result.processes} process{'es' if result.processes > 1 else ''}: "
                         f"{result.train_images} training, {result.held_out_images} held-out images")
-    before = result.before
-    table.add_row("before", "", f"{before.loss:.4f}", f"{before.upright:.3f}", f"{before.transformed:.3f}", "", "")
+    table.add_row("before", "", *_held_out_cells(result.before), "", "")
     for record in result.history:
-        held = record.held_out
-        table.add_row(str(record.epoch), f"{record.train_loss:.4f}", f"{held.loss:.4f}", f"{held.upright:.3f}",
-                      f"{held.transformed:.3f}", f"{record.seconds:.1f}", f"{record.images / record.seconds:,.0f}")
+        table.add_row(str(record.epoch), f"{record.train_loss:.4f}", *_held_out_cells(record.held_out),
+                      f"{record.seconds:.1f}", f"{record.images / record.seconds:,.0f}")
     return table
+
+
+def _held_out_cells(held: Evaluation) -> list[str]:
+    cells = [f"{held.loss:.4f}", f"{held.upright:.3f}", f"{held.transformed:.3f}"]
+    scores = held.segmentation
+    if scores is not None:
+        cells += [f"{scores.upright.mean_iou:.3f}", f"{scores.moved_mean_iou:.3f}", f"{scores.worst_iou:.3f}"]
+    return cells

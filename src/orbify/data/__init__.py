@@ -1,7 +1,7 @@
 """The user's images: read whole into memory (:mod:`orbify.data.images`) or streamed one tile at a time
 (:mod:`orbify.data.tiles`, opened by :mod:`orbify.data.catalog` from folders, CSV manifests, arrays and
-tar shards (:mod:`orbify.data.shards`)); single images decoded and prepared by :mod:`orbify.data.decoding`;
-training tiles augmented by :mod:`orbify.data.augment`."""
+tar shards (:mod:`orbify.data.shards`)); single images decoded and prepared by :mod:`orbify.data.decoding`,
+segmentation masks by :mod:`orbify.data.masks`; training tiles augmented by :mod:`orbify.data.augment`."""
 
 from orbify.data.augment import AUGMENT_LEVELS, augmentation
 from orbify.data.catalog import open_tiles

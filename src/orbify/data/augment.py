@@ -7,6 +7,12 @@ nothing, so only what lies outside the group is drawn: a crop and rescale, a sma
 a left-right flip when the group has no mirror images, and brightness/contrast changes; the
 ``strong`` level adds saturation/hue changes (three channels only) and a slight blur.
 
+Called as ``augment(image, tv_tensors.Mask(mask))`` (dense tiles, :class:`~orbify.data.tiles.Preparation`
+does so), one draw moves the image and its mask together: torchvision moves a ``Mask`` by nearest
+neighbour and leaves it out of colour changes and blur; the corners a small turn brings in are
+filled with :data:`~orbify.data.masks.UNLABELLED` in the mask (the ignore value has become -1 by
+then), so no loss or score counts them.
+
 Every random draw comes from torch's global generator, so ``torch.manual_seed(s)`` before a sample
 makes its augmentation repeatable (a resumed run draws the same changes).
 """
@@ -16,6 +22,7 @@ from __future__ import annotations
 from typing import TYPE_CHECKING
 
 from orbify.common.options import check_choice
+from orbify.data.masks import UNLABELLED
 from orbify.data.tiles import Augmentation
 from orbify.errors import OptionError
 
@@ -40,9 +47,10 @@ def augmentation(level: str, group: Group, size: int, channels: int) -> Augmenta
     check_choice("augment", level, AUGMENT_LEVELS)
     if level == "none":
         return None
-    v2 = _transforms(level)
+    v2, tv_tensors = _transforms(level)
     steps = [v2.RandomResizedCrop(size, scale=_CROP_SCALE, antialias=True),
-             v2.RandomRotation(_TURN_DEGREES, interpolation=v2.InterpolationMode.BILINEAR)]
+             v2.RandomRotation(_TURN_DEGREES, interpolation=v2.InterpolationMode.BILINEAR,
+                               fill={tv_tensors.Mask: UNLABELLED, "others": 0})]
     if not group.mirror:   # a dN model already treats an image and its mirror alike
         steps.append(v2.RandomHorizontalFlip())
     steps.append(v2.ColorJitter(brightness=_JITTER, contrast=_JITTER))
@@ -54,10 +62,12 @@ def augmentation(level: str, group: Group, size: int, channels: int) -> Augmenta
 
 
 def _transforms(level: str):
+    """torchvision's ``transforms.v2`` and ``tv_tensors`` modules."""
     try:
+        from torchvision import tv_tensors
         from torchvision.transforms import v2
     except ImportError as missing:
         raise OptionError(f"The augmentation {level!r} needs torchvision, which is not installed",
                           where="option augment",
                           fix="pip install 'orbify[augment]' (or pip install torchvision), or choose augment 'none'") from missing
-    return v2
+    return v2, tv_tensors

@@ -2,19 +2,20 @@
 
 :func:`open_tiles` accepts
 
-* a folder of images, loose or one sub-folder per class (the order and labels of
-  :func:`~orbify.data.images.read_images`);
+* a folder of images, loose, one sub-folder per class, or ``images/`` and ``masks/`` paired by
+  stem (the order, labels and masks of :func:`~orbify.data.images.read_images`);
 * a ``.csv`` manifest with a header: ``path`` (required; relative to the manifest's folder),
   optionally ``label`` (class indices when every label is a non-negative integer, else class names,
-  sorted, which the labels then index) and ``split`` (``train``, ``val``, or empty for train; the
-  tiles' ``validation`` marks the ``val`` rows); cells are stripped of surrounding spaces, blank
-  lines skipped;
+  sorted, which the labels then index) or ``mask`` (the path of the image's mask, like ``path``),
+  and ``split`` (``train``, ``val``, or empty for train; the tiles' ``validation`` marks the ``val``
+  rows); cells are stripped of surrounding spaces, blank lines skipped;
 * an ``.npy`` array (memory-mapped, converted one image at a time; no labels) or an ``.npz`` file
-  (read whole: ``images``, optionally ``labels`` and ``classes``);
+  (read whole: ``images``, optionally ``labels`` and ``classes``, or ``masks``);
 * tar shards, ``x.tar`` or a brace pattern ``tiles-{0000..0099}.tar`` (:mod:`orbify.data.shards`).
 
-Every file is stat-ed at open, and the fingerprint covers each one's size and modification time,
-so any change to the list or to a file changes it. Errors name the file, and the line of a manifest.
+Every file (mask files too) is stat-ed at open, and the fingerprint covers each one's size and
+modification time, so any change to the list or to a file changes it. Errors name the file, and the
+line of a manifest.
 """
 
 from __future__ import annotations
@@ -38,9 +39,9 @@ from orbify.data.shards import is_shard_spec, open_shards
 from orbify.data.tiles import ArrayTiles, FileTiles, PackedStrings, Preparation, Tiles
 from orbify.errors import DataError
 
-ACCEPTED_FORMS = ("a folder of images (optionally one sub-folder per class), a .csv manifest (columns path, label, "
-                  "split), an .npy or .npz array file, or tar shards (tiles.tar, or a pattern such as "
-                  "tiles-{0000..0099}.tar)")
+ACCEPTED_FORMS = ("a folder of images (optionally one sub-folder per class, or images/ and masks/), a .csv manifest "
+                  "(columns path, label or mask, split), an .npy or .npz array file, or tar shards (tiles.tar, or a "
+                  "pattern such as tiles-{0000..0099}.tar)")
 _SPLITS = {"": False, "train": False, "val": True}   # split value → in the validation samples
 _INDEX = re.compile(r"[0-9]+")
 
@@ -72,20 +73,21 @@ def open_tiles(data: str | Path, *, preparation: Preparation, limit: int | None 
 # -- file lists ----------------------------------------------------------------------------------
 @dataclass
 class _Listing:
-    """Files relative to a folder, with optional labels, class names and validation marks; ``locate(i)`` says
-    where file ``i`` was listed (for messages)."""
+    """Files relative to a folder, with optional labels, class names, validation marks and mask files;
+    ``locate(i)`` says where file ``i`` was listed (for messages)."""
 
     names: list[str]
     labels: list[int] | None
     classes: list[str] | None
     validation: list[bool] | None
     locate: Callable[[int], str]
+    masks: list[str] | None = None
 
 
 def _open_folder(folder: Path, preparation: Preparation, limit: int | None) -> Tiles:
     listing = list_folder(folder)
     return _file_tiles(folder, _Listing(listing.names, listing.labels, listing.classes, None,
-                                        lambda i: str(folder / listing.names[i])), preparation, limit)
+                                        lambda i: str(folder / listing.names[i]), listing.masks), preparation, limit)
 
 
 def _open_manifest(file: Path, preparation: Preparation, limit: int | None) -> Tiles:
@@ -97,22 +99,27 @@ def _file_tiles(root: Path, listing: _Listing, preparation: Preparation, limit: 
     names = [listing.names[i] for i in keep]
     labels = torch.tensor([listing.labels[i] for i in keep], dtype=torch.long) if listing.labels is not None else None
     validation = torch.tensor([listing.validation[i] for i in keep]) if listing.validation is not None else None
+    masks = [listing.masks[i] for i in keep] if listing.masks is not None else None
     digest = hashlib.sha256()
     for i, name in zip(keep, names):
         digest.update(f"{name}\0{_file_stamp(root / name, listing.locate(i))}\n".encode("utf-8", "surrogateescape"))
+    for i, mask in zip(keep, masks or []):
+        digest.update(f"{mask}\0{_file_stamp(root / mask, listing.locate(i), 'mask')}\n".encode("utf-8",
+                                                                                             "surrogateescape"))
     for extra in (labels, validation):
         digest.update(extra.numpy().tobytes() if extra is not None else b"-")
     digest.update("\0".join(listing.classes).encode() if listing.classes is not None else b"-")
     return FileTiles(root, PackedStrings(names), preparation=preparation, labels=labels, classes=listing.classes,
-                     validation=validation, fingerprint=f"files n={len(names)} sha256={digest.hexdigest()}")
+                     validation=validation, fingerprint=f"files n={len(names)} sha256={digest.hexdigest()}",
+                     masks=PackedStrings(masks) if masks is not None else None)
 
 
-def _file_stamp(file: Path, where: str) -> str:
-    """``size mtime_ns`` of a regular file, else DataError located at ``where``."""
+def _file_stamp(file: Path, where: str, kind: str = "image") -> str:
+    """``size mtime_ns`` of a regular file (an image, or a mask), else DataError located at ``where``."""
     try:
         info = os.stat(file)
     except OSError as error:
-        raise DataError(f"The image file {str(file)!r} cannot be opened ({error.strerror})", where=where,
+        raise DataError(f"The {kind} file {str(file)!r} cannot be opened ({error.strerror})", where=where,
                         fix="check the path (a manifest's relative paths start at the manifest's folder)") from error
     if not stat.S_ISREG(info.st_mode):
         raise DataError(f"{str(file)!r} is not a file", where=where, fix="list image files only")
@@ -122,7 +129,7 @@ def _file_stamp(file: Path, where: str) -> str:
 # -- manifests -----------------------------------------------------------------------------------
 def _read_manifest(file: Path) -> _Listing:
     """The rows of a CSV manifest (read with the csv module; a blank line is skipped)."""
-    paths, labels, splits, lines = [], [], [], []
+    paths, labels, masks, splits, lines = [], [], [], [], []
     try:
         with open(file, newline="", encoding="utf-8-sig") as stream:
             reader = csv.reader(stream)
@@ -137,6 +144,7 @@ def _read_manifest(file: Path) -> _Listing:
                 cells = dict(zip(columns, (cell.strip() for cell in row)))
                 paths.append(_manifest_path(file, line, cells.get("path", "")))
                 labels.append(_manifest_label(file, line, cells.get("label", "")) if "label" in columns else None)
+                masks.append(_manifest_mask(file, line, cells.get("mask", "")) if "mask" in columns else None)
                 splits.append(_manifest_split(file, line, cells.get("split", "")) if "split" in columns else None)
                 lines.append(line)
     except (OSError, UnicodeDecodeError, csv.Error) as error:
@@ -147,17 +155,22 @@ def _read_manifest(file: Path) -> _Listing:
                         fix="add one row per image below the header (a column 'path')")
     indices, classes = _class_indices(labels) if "label" in columns else (None, None)
     validation = [bool(s) for s in splits] if "split" in columns else None
-    return _Listing(paths, indices, classes, validation, lambda i: f"{file}:{lines[i]}")
+    return _Listing(paths, indices, classes, validation, lambda i: f"{file}:{lines[i]}",
+                    masks if "mask" in columns else None)
 
 
 def _manifest_columns(file: Path, header: list[str] | None) -> list[str]:
     if header is None:
         raise DataError(f"The manifest {str(file)!r} is empty", where=str(file),
-                        fix="write a header line (path, optionally label and split), then one row per image")
+                        fix="write a header line (path, optionally label or mask, and split), then one row per "
+                            "image")
     columns = [name.strip().lower() for name in header]
     if "path" not in columns:
         _manifest_error(file, 1, f"has no 'path' column (the header names: {', '.join(columns) or 'nothing'})",
                         "name the column of image paths 'path' in the header line")
+    if "label" in columns and "mask" in columns:
+        _manifest_error(file, 1, "has both a 'label' and a 'mask' column",
+                        "give class labels (classification) or mask paths (segmentation), not both")
     return columns
 
 
@@ -172,6 +185,13 @@ def _manifest_label(file: Path, line: int, label: str) -> str:
         _manifest_error(file, line, "has an empty label while the manifest has a 'label' column",
                         "give every row a label (a class index or a class name), or remove the 'label' column")
     return label
+
+
+def _manifest_mask(file: Path, line: int, mask: str) -> str:
+    if not mask:
+        _manifest_error(file, line, "has no mask while the manifest has a 'mask' column",
+                        "give every row the path of its mask (relative to the manifest, like 'path')")
+    return mask
 
 
 def _manifest_split(file: Path, line: int, split: str) -> bool:
@@ -208,13 +228,14 @@ def _open_npy(file: Path, preparation: Preparation, limit: int | None) -> Tiles:
 
 
 def _open_npz(file: Path, preparation: Preparation, limit: int | None) -> Tiles:
-    array, labels, classes = load_npz(file)
-    return _array_tiles(array, file, preparation, limit, labels=labels, classes=classes)
+    content = load_npz(file)
+    return _array_tiles(content.images, file, preparation, limit, labels=content.labels, classes=content.classes,
+                        masks=content.masks)
 
 
 def _array_tiles(array: np.ndarray, file: Path, preparation: Preparation, limit: int | None, *,
                  memory_mapped: bool = False, labels: torch.Tensor | None = None,
-                 classes: list[str] | None = None) -> Tiles:
+                 classes: list[str] | None = None, masks: np.ndarray | None = None) -> Tiles:
     check_image_array(array, file)
     keep = np.asarray(evenly_spaced(array.shape[0], limit), dtype=np.int64)
     info = file.stat()
@@ -223,4 +244,4 @@ def _array_tiles(array: np.ndarray, file: Path, preparation: Preparation, limit:
                    f"dtype={array.dtype} kept={len(keep)} sha256={digest.hexdigest()}")
     return ArrayTiles(array, file, keep, preparation=preparation, memory_mapped=memory_mapped,
                       labels=labels[torch.from_numpy(keep)] if labels is not None else None, classes=classes,
-                      fingerprint=fingerprint)
+                      fingerprint=fingerprint, masks=masks)

@@ -8,14 +8,18 @@ pixel is decoded (an untrusted file cannot make orbify allocate gigabytes).
 from __future__ import annotations
 
 import io
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 import torch
 import torch.nn.functional as F
 
 from orbify.errors import DataError
+
+if TYPE_CHECKING:
+    from PIL.Image import Image as PillowImage
 
 CHANNEL_COUNTS = (1, 3, 4)
 LARGEST_IMAGE_PIXELS = 8192 * 8192
@@ -34,20 +38,31 @@ def decode_image(file: Path | str, channels: int | None, *, data: bytes | None =
     ``channels`` 1 gives grey, 3 RGB (by Pillow's conversions), None the image's own: grey for a grey image,
     else RGB. The size guard applies to bytes exactly as to files.
     """
+    array = decode_pixels(file, lambda image: np.asarray(image.convert(_pillow_mode(image.mode, channels)),
+                                                         dtype=np.uint8), data=data)
+    tensor = torch.from_numpy(array.copy()).float() / 255.0
+    return tensor.unsqueeze(0) if tensor.dim() == 2 else tensor.permute(2, 0, 1)
+
+
+def decode_pixels(file: Path | str, pixels: Callable[[PillowImage], np.ndarray], *,
+                  data: bytes | None = None) -> np.ndarray:
+    """``pixels(image)`` of the Pillow image in ``file`` (or in the bytes ``data``, which ``file`` then names).
+
+    The file's header is checked against :data:`LARGEST_IMAGE_PIXELS` before ``pixels`` decodes anything; a
+    file Pillow cannot read raises :class:`~orbify.errors.DataError` naming it (so does ``pixels``, for its own
+    refusals).
+    """
     from PIL import Image, UnidentifiedImageError
 
     try:
         with Image.open(io.BytesIO(data) if data is not None else file) as image:
             _require_tile_size(file, image.width, image.height)
-            image = image.convert(_pillow_mode(image.mode, channels))
-            array = np.asarray(image, dtype=np.uint8)
+            return pixels(image)
     except Image.DecompressionBombError as error:   # declared far beyond the limit: Pillow refuses at open
         raise _too_large(file, f"more than {LARGEST_IMAGE_PIXELS:,} pixels ({error})") from error
     except (UnidentifiedImageError, OSError, ValueError, SyntaxError, EOFError) as error:
         raise DataError(f"The image file {str(file)!r} cannot be read ({type(error).__name__}: {error})",
                         where=str(file), fix="replace or remove the damaged file") from error
-    tensor = torch.from_numpy(array.copy()).float() / 255.0
-    return tensor.unsqueeze(0) if tensor.dim() == 2 else tensor.permute(2, 0, 1)
 
 
 def _pillow_mode(mode: str, channels: int | None) -> str:
@@ -123,8 +138,9 @@ def match_channels(images: torch.Tensor, channels: int, file: Path) -> torch.Ten
     return (images * luma).sum(1, keepdim=True)
 
 
-def fit(image: torch.Tensor, size: int | None, file: Path) -> torch.Tensor:
-    """Scale the shorter side of a (C, H, W) image to ``size`` (antialiased bilinear) and crop the centre."""
+def fit(image: torch.Tensor, size: int | None, file: Path, *, nearest: bool = False) -> torch.Tensor:
+    """Scale the shorter side of a (C, H, W) image to ``size`` and crop the centre: antialiased bilinear, or with
+    ``nearest`` the nearest pixel centre (for masks: only values the image holds come out, in its dtype)."""
     if size is None:
         return image
     if size < 1:
@@ -132,7 +148,9 @@ def fit(image: torch.Tensor, size: int | None, file: Path) -> torch.Tensor:
     h, w = image.shape[-2:]
     scale = size / min(h, w)
     new_h, new_w = max(size, round(h * scale)), max(size, round(w * scale))
-    if (new_h, new_w) != (h, w):
+    if (new_h, new_w) != (h, w) and nearest:   # float64 holds every integer class index exactly
+        image = F.interpolate(image[None].double(), size=(new_h, new_w), mode="nearest-exact")[0].to(image.dtype)
+    elif (new_h, new_w) != (h, w):
         image = F.interpolate(image[None], size=(new_h, new_w), mode="bilinear", antialias=True,
                               align_corners=False)[0]
     top, left = (new_h - size) // 2, (new_w - size) // 2

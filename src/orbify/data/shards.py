@@ -5,10 +5,11 @@ groups them: ``webdataset.tariterators.base_plus_ext`` splits a member name into
 up to the first dot of the file name) and an extension (the rest, lower-cased); consecutive
 members with one key form a sample; names like ``__meta__`` are skipped. A sample's image is its
 member with an image extension (``png``, ``jpg``, ...), its label the integer in its ``cls`` member
-(every sample has one, or none does).
+(every sample has one, or none does), or, for segmentation, its mask the ``mask.png`` member
+(``KEY.mask.png``: class indices, :mod:`orbify.data.masks`; every sample has one, or none does).
 
 At open every shard is indexed once with Python's tarfile, reading headers only (and the small
-``cls`` members): for each sample its shard and the data offset and size of its image. Reading
+``cls`` members): for each sample its shard and the data offset and size of its image (and mask). Reading
 sample ``i`` opens its shard (once per process, and again in a forked worker, whose inherited
 handles would share their file position with the parent), seeks, reads those bytes and decodes
 them with Pillow. This random access makes the shards a map-style ``Dataset``:
@@ -34,13 +35,15 @@ import torch
 
 from orbify.data.decoding import decode_image
 from orbify.data.images import IMAGE_SUFFIXES, evenly_spaced
-from orbify.data.tiles import UNLABELLED, PackedStrings, Preparation, Tiles
+from orbify.data.masks import decode_mask
+from orbify.data.tiles import UNLABELLED, PackedStrings, Preparation, Target, Tiles
 from orbify.errors import DataError
 
 SHARDS_EXTRA = "pip install 'orbify[shards]' (or pip install webdataset)"
 _BRACES = re.compile(r"\{[^{}]*\}")
 _META = re.compile(r"__[^/]*__($|/)")   # the members webdataset's tar reader skips (its default skip_meta)
 _IMAGE_EXTENSIONS = frozenset(suffix[1:] for suffix in IMAGE_SUFFIXES)
+_MASK_EXTENSION = "mask.png"            # KEY.mask.png: the sample's mask of class indices
 _LABEL = re.compile(r"[0-9]+")
 _OPEN_AT_ONCE = 16                      # shard handles one process keeps open
 
@@ -58,49 +61,80 @@ def open_shards(spec: str, *, preparation: Preparation, limit: int | None = None
 
     Raises:
         DataError: webdataset is not installed; a shard is missing, is not an uncompressed tar file, holds no
-            samples, a sample without exactly one image, a malformed ``cls`` label, or labels on only some samples.
+            samples, a sample without exactly one image, a malformed ``cls`` label, labels or masks on only some
+            samples, or both labels and masks.
     """
     expand_urls, base_plus_ext = _webdataset()
     paths = list(expand_urls(spec))
     index = _Index()
     for shard, path in enumerate(paths):
         _index_shard(path, shard, base_plus_ext, index)
-    labels = _all_or_no_labels(index, paths)
+    labelled = _all_or_none(index, paths, [label is not None for label in index.labels], "'cls' label")
+    masked = _all_or_none(index, paths, [mask is not None for mask in index.masks], f"{_MASK_EXTENSION!r} mask")
+    if labelled and masked:
+        raise DataError(f"The samples of {spec!r} have both 'cls' labels and masks", where=spec,
+                        fix="write class labels (classification) or masks (segmentation), not both")
     keep = np.asarray(evenly_spaced(len(index.offsets), limit), dtype=np.int64)
     digest = hashlib.sha256(keep.tobytes())
     for path in paths:
         info = os.stat(path)
         digest.update(f"{os.path.abspath(path)}\0{info.st_size}\0{info.st_mtime_ns}\n".encode("utf-8",
                                                                                                "surrogateescape"))
+    labels = torch.tensor([index.labels[i] for i in keep], dtype=torch.long) if labelled else None
+    masks = _Members.of([index.masks[i] for i in keep]) if masked else None
     return ShardTiles(paths, np.asarray(index.shards, dtype=np.int32)[keep], np.asarray(index.offsets)[keep],
                       np.asarray(index.sizes)[keep], PackedStrings(index.members[i] for i in keep),
-                      preparation=preparation, labels=labels[torch.from_numpy(keep)] if labels is not None else None,
+                      preparation=preparation, labels=labels, masks=masks,
                       fingerprint=f"shards n={len(paths)} sha256={digest.hexdigest()}")
+
+
+@dataclass
+class _Members:
+    """Where some members' bytes lie in their shards: data ``offsets``, ``sizes`` and member ``names``."""
+
+    offsets: np.ndarray
+    sizes: np.ndarray
+    names: PackedStrings
+
+    @classmethod
+    def of(cls, members: list[tarfile.TarInfo]) -> _Members:
+        return cls(np.asarray([m.offset_data for m in members], dtype=np.int64),
+                   np.asarray([m.size for m in members], dtype=np.int64), PackedStrings(m.name for m in members))
 
 
 class ShardTiles(Tiles):
     """Samples of tar shards: sample ``i`` is the image bytes at ``offsets[i]`` (``sizes[i]`` long) in the shard
-    ``paths[shard_of[i]]``, its member name ``members[i]``; named ``shard.tar:member`` in messages."""
+    ``paths[shard_of[i]]``, its member name ``members[i]``; named ``shard.tar:member`` in messages. With ``masks``
+    (the samples' ``mask.png`` members in the same shards) the tiles are dense."""
 
     def __init__(self, paths: list[str], shard_of: np.ndarray, offsets: np.ndarray, sizes: np.ndarray,
                  members: PackedStrings, *, preparation: Preparation, labels: torch.Tensor | None = None,
-                 fingerprint: str | None = None):
+                 fingerprint: str | None = None, masks: _Members | None = None):
         super().__init__(preparation)
         self.paths, self.shard_of, self.offsets, self.sizes, self.members = paths, shard_of, offsets, sizes, members
-        self.labels, self.fingerprint = labels, fingerprint
+        self.labels, self.fingerprint, self.masks, self.dense = labels, fingerprint, masks, masks is not None
         self._files = _OpenShards(paths)
 
     def __len__(self) -> int:
         return len(self.offsets)
 
-    def read(self, index: int) -> tuple[torch.Tensor, int]:
-        name = self.name(index)
-        data = self._files.read(int(self.shard_of[index]), int(self.offsets[index]), int(self.sizes[index]), name)
-        image = decode_image(name, self.preparation.channels, data=data)
+    def read(self, index: int) -> tuple[torch.Tensor, Target]:
+        name, shard = self.name(index), int(self.shard_of[index])
+        image = decode_image(name, self.preparation.channels,
+                             data=self._files.read(shard, int(self.offsets[index]), int(self.sizes[index]), name))
+        if self.masks is not None:
+            mask_name = self.mask_name(index)
+            return image, decode_mask(mask_name, data=self._files.read(shard, int(self.masks.offsets[index]),
+                                                                       int(self.masks.sizes[index]), mask_name))
         return image, int(self.labels[index]) if self.labels is not None else UNLABELLED
 
     def name(self, index: int) -> str:
         return f"{self.paths[int(self.shard_of[index])]}:{self.members[index]}"
+
+    def mask_name(self, index: int) -> str:
+        if self.masks is None:
+            return super().mask_name(index)
+        return f"{self.paths[int(self.shard_of[index])]}:{self.masks.names[index]}"
 
 
 class _OpenShards:
@@ -144,13 +178,15 @@ class _OpenShards:
 # -- indexing --------------------------------------------------------------------------------------
 @dataclass
 class _Index:
-    """Per sample: shard number, image data offset and size, image member name, label (None without)."""
+    """Per sample: shard number, image data offset and size, image member name, label and mask member (each None
+    without)."""
 
     shards: list[int] = field(default_factory=list)
     offsets: list[int] = field(default_factory=list)
     sizes: list[int] = field(default_factory=list)
     members: list[str] = field(default_factory=list)
     labels: list[int | None] = field(default_factory=list)
+    masks: list[tarfile.TarInfo | None] = field(default_factory=list)
 
 
 def _webdataset() -> tuple[Callable, Callable]:
@@ -216,6 +252,7 @@ def _index_sample(archive: tarfile.TarFile, path: str, shard: int, key: str, sam
     index.sizes.append(member.size)
     index.members.append(member.name)
     index.labels.append(_read_label(archive, path, sample["cls"]) if "cls" in sample else None)
+    index.masks.append(sample.get(_MASK_EXTENSION))
     return 1
 
 
@@ -227,12 +264,12 @@ def _read_label(archive: tarfile.TarFile, path: str, member: tarfile.TarInfo) ->
     return int(text)
 
 
-def _all_or_no_labels(index: _Index, paths: list[str]) -> torch.Tensor | None:
-    missing = [i for i, label in enumerate(index.labels) if label is None]
-    if len(missing) == len(index.labels):
-        return None
-    if missing:
-        first = f"{paths[index.shards[missing[0]]]}:{index.members[missing[0]]}"
-        raise DataError(f"{len(missing)} of {len(index.labels)} samples have no 'cls' label member, the first "
-                        f"{first!r}", where=first, fix="give every sample a .cls member, or none of them")
-    return torch.tensor(index.labels, dtype=torch.long)
+def _all_or_none(index: _Index, paths: list[str], present: list[bool], member: str) -> bool:
+    """Whether every sample has the ``member`` (True) or none does (False); DataError naming the first sample
+    without it when only some do."""
+    missing = [i for i, has in enumerate(present) if not has]
+    if len(missing) in (0, len(present)):
+        return bool(present) and not missing
+    first = f"{paths[index.shards[missing[0]]]}:{index.members[missing[0]]}"
+    raise DataError(f"{len(missing)} of {len(present)} samples have no {member} member, the first {first!r}",
+                    where=first, fix=f"give every sample a {member} member, or none of them")

@@ -89,8 +89,8 @@ def restore_checkpoint(state: dict, path: Path, student: nn.Module, training: Tr
     else:
         result.notes.append(f"resumed on {world.size} processes from a checkpoint of {state['processes']}: "
                             "training goes on, but not exactly as the interrupted run would have")
-    result.before = Evaluation(**state["before"])
-    result.history = [EpochRecord(**{**record, "held_out": Evaluation(**record["held_out"])})
+    result.before = Evaluation.restore(state["before"])
+    result.history = [EpochRecord(**{**record, "held_out": Evaluation.restore(record["held_out"])})
                       for record in state["history"]]
     result.resumed_after = int(state["epoch"])
     return result.resumed_after, int(state["step"])

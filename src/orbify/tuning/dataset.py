@@ -10,7 +10,7 @@ computed once and kept in memory.
 from __future__ import annotations
 
 import hashlib
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import torch
 from torch import nn
@@ -21,7 +21,8 @@ from orbify.errors import DataError
 from orbify.symmetry.groups import Group
 from orbify.tuning.distributed import World
 from orbify.tuning.samples import BadSamples, BatchPlan, batch_loader
-from orbify.tuning.teacher import VIEW_COMBINATIONS, teach
+from orbify.tuning.teacher import VIEW_COMBINATIONS, TeacherBatch, teach
+from orbify.verification.segmentation import SegmentationScores, confusion
 
 
 def holdout_split(count: int, fraction: float, seed: int) -> tuple[torch.Tensor, torch.Tensor]:
@@ -62,14 +63,32 @@ def split_samples(train: Tiles, val: Tiles | None, holdout_fraction: float, seed
 
 @dataclass(frozen=True)
 class Evaluated:
-    """The evaluated samples that could be read: their ``ids`` (sorted, into the validation tiles), the teacher's
-    log-probabilities on them, and the ``targets`` accuracy counts against (the labels, or the teacher's top class)."""
+    """The evaluated samples that could be read: their ``ids`` (sorted, into the validation tiles) and the teacher on
+    them, under the view combination ``views``.
+
+    For a classifier ``teacher`` holds its log-probabilities and ``targets`` what accuracy counts against (the
+    labels, or the teacher's top class). A dense teacher's maps are not kept (samples × classes × H × W would not
+    fit in memory): ``teacher`` and ``targets`` are None and evaluation runs the teacher again, batch by batch.
+    ``teacher_accuracy`` (and, for dense models, ``teacher_iou``) judge each view combination against the labels.
+    """
 
     ids: torch.Tensor
-    teacher: torch.Tensor
-    targets: torch.Tensor
+    teacher: torch.Tensor | None
+    targets: torch.Tensor | None
     labelled: bool
     teacher_accuracy: dict[str, float]
+    views: str
+    output_shape: tuple[int, ...]
+    teacher_iou: dict[str, float] = field(default_factory=dict)
+
+    @property
+    def classes(self) -> int:
+        return self.output_shape[0]
+
+    @property
+    def dense(self) -> bool:
+        """True for a model whose output is a map (classes, H, W)."""
+        return len(self.output_shape) > 1
 
     @property
     def measure(self) -> str:
@@ -81,41 +100,99 @@ class Evaluated:
         return torch.searchsorted(self.ids, ids)
 
 
+@dataclass
+class _Taught:
+    """One batch of the teacher pass: its tile indices and labels, and a classifier's rows and top classes for each
+    combination, or a dense teacher's confusion matrices against the masks for each combination (None without)."""
+
+    indices: torch.Tensor
+    labels: torch.Tensor
+    output_shape: tuple[int, ...]
+    rows: torch.Tensor | None = None
+    tops: torch.Tensor | None = None
+    confusions: torch.Tensor | None = None
+
+
 def evaluated_samples(model: nn.Module, group: Group, split: Split, views: str, use_labels: bool, world: World,
                       batch_size: int, workers: int, bad: BadSamples) -> Evaluated:
     """Run the teacher once over the evaluated samples (each process its batches) and join the results."""
     plan = BatchPlan(split.val_ids, world, batch_size)
-    parts: list[tuple[torch.Tensor, torch.Tensor, torch.Tensor, torch.Tensor]] = []
+    parts: list[_Taught] = []
     for batch in batch_loader(split.val, plan, workers, seed=0):
         bad.check(batch)
-        if not len(batch):
-            continue
-        taught = teach(model, group, batch.images.to(world.device), views)
-        tops = torch.stack([taught.top_class[how].cpu() for how in VIEW_COMBINATIONS], 1)
-        parts.append((batch.indices, taught.log_probabilities.cpu(), tops, batch.labels))
+        if len(batch):
+            taught = teach(model, group, batch.images.to(world.device), views)
+            _require_fitting_masks(batch.labels, tuple(taught.log_probabilities.shape[1:]), batch.indices, split.val)
+            require_labels_in_range(batch.labels, taught.log_probabilities.shape[1], batch.indices, split.val)
+            parts.append(_taught(batch.indices, batch.labels, taught))
     gathered = [part for shares in world.gather_objects(parts) for part in shares]
     if not gathered:
         raise DataError("No evaluated sample could be read", where="validation data",
                         fix="check the validation images, or give other ones")
-    ids, teacher, tops, labels = (torch.cat(column) for column in zip(*gathered))
+    if len(gathered[0].output_shape) > 1:
+        return _evaluated_maps(gathered, views, use_labels)
+    return _evaluated_classes(gathered, views, use_labels)
+
+
+def _taught(indices: torch.Tensor, labels: torch.Tensor, taught: TeacherBatch) -> _Taught:
+    rows = taught.log_probabilities.cpu()
+    tops = torch.stack([taught.top_class[how].cpu() for how in VIEW_COMBINATIONS], 1)
+    part = _Taught(indices, labels, tuple(rows.shape[1:]))
+    if rows.dim() == 2:
+        part.rows, part.tops = rows, tops
+    elif labels.dim() == 3:
+        part.confusions = torch.stack([confusion(tops[:, i], labels, rows.shape[1])
+                                       for i in range(len(VIEW_COMBINATIONS))])
+    return part
+
+
+def _evaluated_classes(parts: list[_Taught], views: str, use_labels: bool) -> Evaluated:
+    ids, teacher, tops, labels = (torch.cat(column) for column in
+                                  zip(*((p.indices, p.rows, p.tops, p.labels) for p in parts)))
     order = ids.argsort()
     ids, teacher, tops, labels = ids[order], teacher[order], tops[order], labels[order]
     labelled = use_labels and bool((labels != UNLABELLED).all())
-    require_labels_in_range(labels, teacher.shape[1], ids, split.val)
     accuracy = ({how: float((tops[:, i] == labels).double().mean()) for i, how in enumerate(VIEW_COMBINATIONS)}
                 if labelled else {})
     targets = labels if labelled else tops[:, VIEW_COMBINATIONS.index(views)]
-    return Evaluated(ids, teacher, targets, labelled, accuracy)
+    return Evaluated(ids, teacher, targets, labelled, accuracy, views, parts[0].output_shape)
+
+
+def _evaluated_maps(parts: list[_Taught], views: str, use_labels: bool) -> Evaluated:
+    ids = torch.cat([p.indices for p in parts]).sort().values
+    labelled = use_labels and all(p.confusions is not None for p in parts)
+    accuracy, iou = {}, {}
+    if labelled:
+        for i, how in enumerate(VIEW_COMBINATIONS):
+            scores = SegmentationScores.from_confusion(sum(p.confusions[i] for p in parts))
+            accuracy[how], iou[how] = scores.accuracy, scores.mean_iou
+    return Evaluated(ids, None, None, labelled, accuracy, views, parts[0].output_shape, iou)
 
 
 def require_labels_in_range(labels: torch.Tensor, classes: int, ids: torch.Tensor, tiles: Tiles) -> None:
-    """Raise :class:`DataError` naming the first sample whose label is not a class of the model (−1 means none)."""
-    wrong = torch.nonzero((labels < UNLABELLED) | (labels >= classes))
+    """Raise :class:`DataError` naming the first sample whose label (or a pixel of whose mask) is not a class of the
+    model (−1 means none)."""
+    outside = (labels < UNLABELLED) | (labels >= classes)
+    wrong = torch.nonzero(outside.flatten(1).any(1) if labels.dim() > 1 else outside)
     if len(wrong):
         first = int(wrong[0, 0])
-        raise DataError(f"The sample {tiles.name(int(ids[first]))!r} has the label {int(labels[first])}, but the "
-                        f"original model scores {classes} classes", where=tiles.name(int(ids[first])),
-                        fix="give labels that index the model's classes (0 to classes − 1)")
+        value = int(labels[first][outside[first]].flatten()[0])
+        what = "a mask with the value" if labels.dim() > 1 else "the label"
+        raise DataError(f"The sample {tiles.name(int(ids[first]))!r} has {what} {value}, but the original model "
+                        f"scores {classes} classes", where=tiles.name(int(ids[first])),
+                        fix="give labels that index the model's classes (0 to classes − 1; masks may also use the "
+                            "ignored value, 255 by default)")
+
+
+def _require_fitting_masks(labels: torch.Tensor, output_shape: tuple[int, ...], ids: torch.Tensor,
+                           tiles: Tiles) -> None:
+    """Masks need a model whose output is a map of their size; raise :class:`DataError` naming a sample otherwise."""
+    if labels.dim() == 3 and tuple(labels.shape[1:]) != tuple(output_shape[1:]):
+        kind = (f"maps of {output_shape[1]}×{output_shape[2]} pixels" if len(output_shape) == 3
+                else "one class score vector per image")
+        raise DataError(f"The sample {tiles.name(int(ids[0]))!r} has a mask of {labels.shape[1]}×{labels.shape[2]} "
+                        f"pixels, but the original model outputs {kind}", where=tiles.name(int(ids[0])),
+                        fix="give masks of the model's output size (for a classifier: labels, not masks)")
 
 
 def run_fingerprint(teacher_digest: str, group: str, views: str, train: Tiles, split: Split,

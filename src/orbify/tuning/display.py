@@ -8,7 +8,7 @@ import time
 from rich.console import Console
 
 from orbify.common.progress import ProgressBars
-from orbify.tuning.records import EpochRecord, Evaluation
+from orbify.tuning.records import EpochRecord, Evaluation, TuneResult
 
 
 class Display:
@@ -30,13 +30,15 @@ class Display:
     def __exit__(self, *exc) -> None:
         self.bars.__exit__(*exc)
 
-    def teacher(self, accuracy: dict[str, float], chosen: str, before: Evaluation, done: int, step: int = 0) -> None:
+    def teacher(self, result: TuneResult, done: int, step: int = 0) -> None:
         """Say how good each teacher is (with labels), where the student starts, and where a resumed run goes on."""
-        if accuracy:
-            scores = ", ".join(f"{'[bold]' + how + '[/]' if how == chosen else how} {value:.3f}"
-                               for how, value in accuracy.items())
-            self.bars.print(f"teacher accuracy on held-out images by view combination: {scores}")
-        self.bars.print(f"before tuning: {_evaluation(before)}")
+        chosen = result.options.view_combination
+        for what, figures in (("accuracy", result.teacher_accuracy), ("mean IoU", result.teacher_iou)):
+            if figures:
+                scores = ", ".join(f"{'[bold]' + how + '[/]' if how == chosen else how} {value:.3f}"
+                                   for how, value in figures.items())
+                self.bars.print(f"teacher {what} on held-out images by view combination: {scores}")
+        self.bars.print(f"before tuning: {_evaluation(result.before)}")
         if done or step:
             self.bars.print(f"resuming after epoch {done}" + (f", step {step}" if step else ""))
             self.bars.set_completed(self.epoch_bar, done)
@@ -62,7 +64,15 @@ class Display:
 
 
 def _evaluation(evaluation: Evaluation, short: bool = False) -> str:
+    scores = evaluation.segmentation
     if short:
+        if scores is not None:
+            return f"held-out mean IoU {scores.upright.mean_iou:.3f} / {scores.moved_mean_iou:.3f}"
         return f"held-out {evaluation.measure} {evaluation.upright:.3f} / {evaluation.transformed:.3f}"
-    return (f"held-out loss {evaluation.loss:.4f}, {evaluation.measure} upright {evaluation.upright:.3f}, "
+    pixel = "per-pixel " if scores is not None else ""
+    line = (f"held-out loss {evaluation.loss:.4f}, {pixel}{evaluation.measure} upright {evaluation.upright:.3f}, "
             f"transformed {evaluation.transformed:.3f}")
+    if scores is not None:
+        line += (f", mean IoU upright {scores.upright.mean_iou:.3f}, transformed {scores.moved_mean_iou:.3f} "
+                 f"(worst {scores.worst_iou:.3f})")
+    return line

@@ -19,7 +19,7 @@ from __future__ import annotations
 
 import tempfile
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Sequence
 from dataclasses import replace
 from pathlib import Path
 
@@ -45,7 +45,7 @@ from orbify.tuning.distributed import World, join_world
 from orbify.tuning.options import DEFAULT_VAL_LIMIT, RunSettings, TuneOptions
 from orbify.tuning.records import EpochRecord, TuneResult
 from orbify.tuning.samples import BadSamples, BatchPlan, batch_loader
-from orbify.tuning.teacher import teach
+from orbify.tuning.teacher import TeacherBatch, teach
 from orbify.tuning.teacher_cache import CacheKey, TeacherCache, open_teacher_cache, remove_cache, weights_digest
 from orbify.tuning.training import TeacherRows, Training, autocast, evaluate, recalibrate_student
 
@@ -55,12 +55,14 @@ Data = torch.Tensor | Dataset
 
 
 def tune(student: nn.Module, teacher_model: nn.Module, group: str | Group, images: Data,
-         labels: torch.Tensor | None = None, *, val: Data | None = None, val_labels: torch.Tensor | None = None,
+         labels: torch.Tensor | None = None, *, masks: torch.Tensor | None = None, val: Data | None = None,
+         val_labels: torch.Tensor | None = None, val_masks: torch.Tensor | None = None,
          epochs: int = _DEFAULTS.epochs, lr: float = _DEFAULTS.lr, batch_size: int = _DEFAULTS.batch_size,
          view_combination: str = _DEFAULTS.view_combination, label_weight: float = _DEFAULTS.label_weight,
          holdout_fraction: float = _DEFAULTS.holdout_fraction, schedule: str = _DEFAULTS.schedule,
          weight_decay: float = _DEFAULTS.weight_decay, seed: int = _DEFAULTS.seed, augment: str = _DEFAULTS.augment,
-         teacher: str = _DEFAULTS.teacher, use_labels: bool = True, checkpoint_path: PathLike | None = None,
+         teacher: str = _DEFAULTS.teacher, use_labels: bool = True, ignore_index: int = _DEFAULTS.ignore_index,
+         class_weights: Sequence[float] | None = None, checkpoint_path: PathLike | None = None,
          resume: bool = False, force: bool = False, recalibrate: bool = True, progress: bool = True,
          distributed: bool | str = "auto", device: str | torch.device | None = None, workers: int | None = None,
          checkpoint_every: int | None = None, skip_unreadable: bool = False, precision: str = _SETTINGS.precision,
@@ -68,17 +70,25 @@ def tune(student: nn.Module, teacher_model: nn.Module, group: str | Group, image
          on_epoch_end: Callable[[EpochRecord], None] | None = None) -> TuneResult:
     """Distil ``teacher_model`` averaged over ``group`` into the converted ``student``, in place.
 
+    A classifier (output (N, classes)) learns the teacher's class distribution; a dense model (output
+    (N, classes, H, W), or a dict with it under ``"out"``, as torchvision's segmentation models return) learns
+    the teacher's distribution at every pixel, the teacher's views moved back before they are combined
+    (docs/design.md §18), and is scored by per-pixel accuracy and IoU with the masks moved with the images.
+
     Args:
-        student: the converted model (its output: class logits); trained in place and left in eval mode
-            on the computing device.
-        teacher_model: the original plain classifier; only read (moved to the computing device).
+        student: the converted model (its output: class logits, or maps of them); trained in place and left in
+            eval mode on the computing device.
+        teacher_model: the original plain model; only read (moved to the computing device).
         group: the group the student is invariant to ("c4", "d4", ...).
         images: the training data: an (N, C, H, W) float tensor normalised as the models expect, a
             :class:`~orbify.data.tiles.Tiles` (:func:`orbify.data.catalog.open_tiles` streams a folder, a
             manifest, an array file or tar shards), or any ``torch.utils.data.Dataset`` whose items are a
             prepared (C, H, W) image or ``(image, label)``.
         labels: (N,) class indices for a tensor of images; adds ``label_weight`` × cross-entropy to the loss.
-        val, val_labels: a separate validation set (same forms); else a manifest's ``val`` rows, else a held-out
+        masks: (N, H, W) integer class maps for a tensor of images (dense models), ``ignore_index`` where a pixel
+            has no label; a data set carries its own (:func:`orbify.data.catalog.open_tiles` reads ``images/`` and
+            ``masks/`` folders, a manifest's ``mask`` column, an .npz's ``masks``).
+        val, val_labels, val_masks: a separate validation set (same forms); else a manifest's ``val`` rows, else a held-out
             share (``holdout_fraction``) of ``images``. At most ``val_limit`` validation samples are evaluated.
         epochs, lr, batch_size: training length, peak learning rate (AdamW), images per process per step.
         view_combination: how the teacher combines the |G| views: "probability", "logit" or
@@ -86,8 +96,11 @@ def tune(student: nn.Module, teacher_model: nn.Module, group: str | Group, image
         schedule: learning-rate schedule over all steps: "cosine", "one-cycle" or "constant".
         seed: fixes the split, the order of the batches and every random draw; a run is repeatable.
         augment: "none", "light" or "strong" (:mod:`orbify.data.augment`); needs ``teacher="online"``.
-        teacher: "cached" (computed once per sample, kept in ``teacher_cache``) or "online" (on every batch).
-        use_labels: learn from and measure against the data's labels where it has them.
+        teacher: "cached" (computed once per sample, kept in ``teacher_cache``), "online" (on every batch), or
+            "auto": cached for a classifier without augmentation, else online.
+        use_labels: learn from and measure against the data's labels (or masks) where it has them.
+        ignore_index: the mask value of pixels without a label (left out of the loss and the scores).
+        class_weights: one weight per class for the cross-entropy on labels (rare classes weighed up).
         checkpoint_path: written atomically after every epoch and every ``checkpoint_every`` steps (by
             rank 0); ``None`` writes none.
         resume: continue from ``checkpoint_path`` when it exists (a fresh start when it does not),
@@ -120,15 +133,16 @@ def tune(student: nn.Module, teacher_model: nn.Module, group: str | Group, image
     (2, 'agreement', 18, 2)
     """
     options = TuneOptions(epochs, lr, batch_size, view_combination, label_weight, holdout_fraction, schedule,
-                          weight_decay, seed, augment, teacher, use_labels)
+                          weight_decay, seed, augment, teacher, use_labels, ignore_index,
+                          tuple(float(w) for w in class_weights) if class_weights is not None else None)
     options.validate()
     settings = RunSettings(workers, checkpoint_every, skip_unreadable, precision,
                            Path(teacher_cache) if teacher_cache is not None else None, val_limit)
     group = parse_group(group)
-    train = _augmented(as_tiles(images, labels, "images"), options.augment, group)
+    train = _augmented(as_tiles(images, labels, masks, "images", ignore_index), options.augment, group)
     if workers is None and isinstance(train, TensorTiles):
         settings = replace(settings, workers=0)      # images already in memory: nothing to decode in parallel
-    validation = as_tiles(val, val_labels, "val") if val is not None else None
+    validation = as_tiles(val, val_labels, val_masks, "val", ignore_index) if val is not None else None
     if resume and checkpoint_path is None:
         raise OptionError("Resuming needs a checkpoint path", where="option resume",
                           fix="give checkpoint_path (--checkpoint) together with resume")
@@ -144,21 +158,23 @@ def tune(student: nn.Module, teacher_model: nn.Module, group: str | Group, image
         world.leave()
 
 
-def as_tiles(data: Data, labels: torch.Tensor | None, what: str) -> Tiles:
-    """Tiles for any accepted form of data (a tensor, Tiles, or a Dataset); ``labels`` only go with a tensor."""
+def as_tiles(data: Data, labels: torch.Tensor | None, masks: torch.Tensor | None, what: str,
+             ignore_index: int = _DEFAULTS.ignore_index) -> Tiles:
+    """Tiles for any accepted form of data (a tensor, Tiles, or a Dataset), reading ``ignore_index`` in masks as
+    unlabelled; ``labels`` and ``masks`` only go with a tensor."""
     if isinstance(data, Tiles):
         tiles = data
     elif isinstance(data, torch.Tensor):
-        return TensorTiles(data, labels)
+        tiles = TensorTiles(data, labels, masks=masks)
     elif isinstance(data, Dataset):
         tiles = DatasetTiles(data)
     else:
         raise OptionError(f"The {what} are a {type(data).__name__}", where=what,
                           fix="give an (N, C, H, W) float tensor or a torch.utils.data.Dataset")
-    if labels is not None:
-        raise OptionError(f"Labels go with a tensor of {what}; a data set carries its own", where=f"{what} labels",
-                          fix="leave the labels out, or give the images as a tensor")
-    return tiles
+    if (labels is not None or masks is not None) and not isinstance(data, torch.Tensor):
+        raise OptionError(f"Labels and masks go with a tensor of {what}; a data set carries its own",
+                          where=f"{what} labels", fix="leave the labels and masks out, or give the images as a tensor")
+    return tiles.with_preparation(ignore=ignore_index)
 
 
 def _augmented(tiles: Tiles, level: str, group: Group) -> Tiles:
@@ -192,15 +208,16 @@ class _Run:
                                       options.use_labels, world, options.batch_size, self.settings.workers,
                                       self.bad_val)
         if self.train.labels is not None and options.use_labels:
-            require_labels_in_range(self.train.labels[split.train_ids], evaluated.teacher.shape[1], split.train_ids,
+            require_labels_in_range(self.train.labels[split.train_ids], evaluated.classes, split.train_ids,
                                     self.train)
+        self.train = self.train.with_preparation(classes=evaluated.classes)   # masks are checked as they are read
         digest = weights_digest(self.teacher_model)
         fingerprint = run_fingerprint(digest, self.group.name, options.view_combination, self.train, split,
                                       options.use_labels)
         result = TuneResult(options, None, [], evaluated.teacher_accuracy, fingerprint, world.size,
-                            len(split.train_ids), len(evaluated.ids), world.rank)
+                            len(split.train_ids), len(evaluated.ids), world.rank, teacher_iou=evaluated.teacher_iou)
         state = checkpoint_to_resume(self.checkpoint, world, resume=resume, force=force)
-        teacher = self._teacher_rows(digest, evaluated.teacher.shape[1], result)
+        teacher = self._teacher_rows(digest, evaluated.output_shape, result)
         torch.manual_seed(options.seed + world.rank)
         if state is None and recalibrate:
             recalibrate_student(self.student, self.train, split.train_ids, world, self.settings, options.batch_size,
@@ -213,7 +230,7 @@ class _Run:
         with Display(progress and world.is_main, options.epochs, training.steps) as display:
             for note in result.notes:
                 display.note(f"note: {note}")
-            display.teacher(result.teacher_accuracy, options.view_combination, result.before, first_epoch, first_step)
+            display.teacher(result, first_epoch, first_step)
             for epoch in range(first_epoch, options.epochs):
                 self._epoch(epoch, first_step if epoch == first_epoch else 0, teacher, evaluated, training, result,
                             display)
@@ -221,14 +238,16 @@ class _Run:
         result.skipped = sorted(set(self.bad_train.names(world)) | set(self.bad_val.names(world)))
         return result
 
-    def _teacher_rows(self, digest: str, classes: int, result: TuneResult) -> TeacherRows:
-        """The teacher for training: rows of the cache (computed now, or an earlier run's), or the original online."""
+    def _teacher_rows(self, digest: str, output_shape: tuple[int, ...], result: TuneResult) -> TeacherRows:
+        """The teacher for training: rows of the cache (computed now, or an earlier run's), or the original online
+        (``teacher="auto"``: online for a dense model or augmented images, see :class:`TuneOptions`)."""
         options, device = self.options, self.world.device
-        if options.teacher == "online":
-            return lambda batch, images: teach(self.teacher_model, self.group, images,
-                                               options.view_combination).log_probabilities
+        online = options.augment != "none" or len(output_shape) > 1
+        if options.teacher == "online" or (options.teacher == "auto" and online):
+            result.teacher_online = True
+            return lambda batch, images: self._teach(images).log_probabilities
         cache = self._open_cache(CacheKey(digest, self.group.name, options.view_combination,
-                                          self.train.cache_key() or "", len(self.train), classes))
+                                          self.train.cache_key() or "", len(self.train), list(output_shape)))
         result.teacher_seconds, result.teacher_reused = cache.seconds, cache.reused
         if cache.note:
             result.notes.append(cache.note)
@@ -249,8 +268,7 @@ class _Run:
                 self.bad_train.check(batch)
                 if len(batch):
                     with autocast(settings, world):
-                        taught = teach(self.teacher_model, self.group, batch.images.to(world.device),
-                                       self.options.view_combination)
+                        taught = self._teach(batch.images.to(world.device))
                     yield batch.indices, taught.log_probabilities.float().cpu()
 
         cache = open_teacher_cache(folder, key, batches, world)
@@ -283,6 +301,9 @@ class _Run:
         if self.on_epoch_end is not None:
             self.on_epoch_end(record)
 
+    def _teach(self, images: torch.Tensor) -> TeacherBatch:
+        return teach(self.teacher_model, self.group, images, self.options.view_combination)
+
     def _evaluate(self, evaluated: Evaluated):
         return evaluate(self.student, self.split.val, evaluated, self.group, self.world, self.settings,
-                        self.options.batch_size, self.bad_val)
+                        self.options.batch_size, self.bad_val, self._teach)

@@ -15,14 +15,19 @@ from orbify.errors import OptionError
 from orbify.tuning.teacher import VIEW_COMBINATIONS
 
 SCHEDULES = ("cosine", "one-cycle", "constant")
-TEACHER_MODES = ("cached", "online")
+TEACHER_MODES = ("auto", "cached", "online")
 PRECISIONS = ("auto", "float32", "bf16")
 DEFAULT_VAL_LIMIT = 2048
 
 
 @dataclass(frozen=True)
 class TuneOptions:
-    """Everything that decides the course of a tuning run (a checkpoint resumes only with the same options)."""
+    """Everything that decides the course of a tuning run (a checkpoint resumes only with the same options).
+
+    ``teacher`` "auto" caches the teacher of a classifier and runs a dense teacher online (its cache would hold
+    a class map per pixel: samples × classes × H × W half floats), and runs online under augmentation.
+    ``ignore_index`` is the mask value of unlabelled pixels; ``class_weights`` weigh the cross-entropy on labels.
+    """
 
     epochs: int = 10
     lr: float = 1e-3
@@ -34,8 +39,10 @@ class TuneOptions:
     weight_decay: float = 0.0
     seed: int = 0
     augment: str = "none"
-    teacher: str = "cached"
+    teacher: str = "auto"
     use_labels: bool = True
+    ignore_index: int = 255
+    class_weights: tuple[float, ...] | None = None
 
     def validate(self) -> None:
         """Raise :class:`OptionError` for a value outside its range, or a cached teacher with augmentation."""
@@ -52,6 +59,9 @@ class TuneOptions:
             if getattr(self, name) < low:
                 raise OptionError(f"{name} must be at least {low}, got {getattr(self, name)}", where=f"option {name}",
                                   fix=f"give {name} ≥ {low}")
+        if self.class_weights is not None and not (self.class_weights and all(w >= 0 for w in self.class_weights)):
+            raise OptionError(f"class_weights must be non-negative numbers, one per class, got {self.class_weights}",
+                              where="option class_weights", fix="give one weight ≥ 0 per class, e.g. 1,1,4")
         for name in ("lr", "label_weight", "weight_decay"):
             if not getattr(self, name) >= 0:
                 raise OptionError(f"{name} must be ≥ 0, got {getattr(self, name)}", where=f"option {name}",

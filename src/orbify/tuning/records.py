@@ -5,21 +5,31 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 from orbify.tuning.options import TuneOptions
+from orbify.verification.segmentation import GroupScores
 
 
 @dataclass
 class Evaluation:
     """The student on the held-out images.
 
-    ``loss``: KL(teacher ‖ student) in nats per image. ``upright``: accuracy on the images as given;
-    ``transformed``: the mean accuracy over every other group element's copies. Both count
-    agreement with the teacher's top class when no labels were given (``measure`` says which).
+    ``loss``: KL(teacher ‖ student) in nats per image (per pixel for a dense model). ``upright``: accuracy on the
+    images as given; ``transformed``: the mean accuracy over every other group element's copies (per pixel for a
+    dense model, whose images and masks are moved together). Both count agreement with the teacher's top class
+    when no labels were given (``measure`` says which). ``segmentation``: a dense model's per-pixel accuracy and
+    IoU, upright and for every other element (None for a classifier).
     """
 
     loss: float
     upright: float
     transformed: float
     measure: str
+    segmentation: GroupScores | None = None
+
+    @classmethod
+    def restore(cls, fields: dict) -> "Evaluation":
+        """The evaluation of a checkpoint's ``dataclasses.asdict`` form."""
+        scores = fields.get("segmentation")
+        return cls(**{**fields, "segmentation": GroupScores.restore(scores) if scores is not None else None})
 
 
 @dataclass
@@ -41,12 +51,12 @@ class TuneResult:
 
     ``before`` evaluates the student after batch-norm recalibration, before the first step.
     ``teacher_accuracy`` is the held-out accuracy of the teacher under every view combination
-    (empty without labels), to judge the choice. ``teacher_hash`` fingerprints the original's
+    (empty without labels), to judge the choice; ``teacher_iou`` its mean IoU (dense models with masks). ``teacher_hash`` fingerprints the original's
     weights, the data and the split; checkpoints carry it. ``rank`` is this process's rank (rank 0
     writes files). ``resumed_after`` is the epoch a resumed run started after (None for a fresh
     run). ``skipped`` names the samples left out as unreadable (with ``skip_unreadable``).
     ``teacher_seconds`` is what the teacher pass over the training data took (by the earlier run
-    whose cache was reused, when ``teacher_reused``; 0 when the teacher runs online).
+    whose cache was reused, when ``teacher_reused``; 0 when the teacher runs online, ``teacher_online``).
     """
 
     options: TuneOptions
@@ -63,6 +73,8 @@ class TuneResult:
     skipped: list[str] = field(default_factory=list)
     teacher_seconds: float = 0.0
     teacher_reused: bool = False
+    teacher_iou: dict[str, float] = field(default_factory=dict)
+    teacher_online: bool = False
 
     @property
     def final(self) -> Evaluation:

@@ -7,9 +7,10 @@ through a ``torch.utils.data.DataLoader`` whose worker processes decode and prep
 - :class:`BatchPlan` says which samples each process reads, in whole batches: a shuffled epoch
   (the ``DistributedSampler`` permutation, so the processes' shares are disjoint) or a fixed list
   shared round robin. It can start part-way through (a resumed epoch).
-- :class:`SampleReader` reads one sample. An augmentation draws its random numbers from a
-  generator seeded by (seed, epoch, sample), so a sample looks the same whichever worker reads
-  it, and a resumed run sees exactly the images an uninterrupted one would have.
+- :class:`SampleReader` reads one sample: its image and target (a label, or a mask for dense
+  tiles). An augmentation draws its random numbers from a generator seeded by (seed, epoch,
+  sample), so a sample looks the same whichever worker reads it, and a resumed run sees exactly
+  the images (and masks) an uninterrupted one would have.
 - A sample that cannot be read arrives as a failure; :class:`BadSamples` stops the run naming the
   file, or (``skip_unreadable``) counts and lists it.
 """
@@ -23,15 +24,19 @@ from dataclasses import dataclass, field
 import torch
 from torch.utils.data import DataLoader, Dataset, DistributedSampler, Sampler
 
-from orbify.data.tiles import UNLABELLED, Tiles
+from orbify.data.tiles import UNLABELLED, Target, Tiles
 from orbify.errors import DataError
 from orbify.tuning.distributed import World, fixed_batches
+
+Item = tuple[int, torch.Tensor | None, Target, tuple[str, str | None] | None]
+"""What :class:`SampleReader` gives for one sample: (index, image or None, target, None or the failure)."""
 
 
 @dataclass
 class Batch:
-    """The samples of one batch that could be read (``indices`` into the tiles, ``images``, ``labels``) and the
-    ``failures`` of those that could not: (index, what went wrong, what to do)."""
+    """The samples of one batch that could be read (``indices`` into the tiles, ``images``, ``labels``: (B,) class
+    indices, or (B, H, W) masks for dense tiles) and the ``failures`` of those that could not: (index, what went
+    wrong, what to do)."""
 
     indices: torch.Tensor
     images: torch.Tensor
@@ -56,18 +61,18 @@ class SampleReader(Dataset):
     def __len__(self) -> int:
         return len(self.tiles)
 
-    def __getitem__(self, key: tuple[int, int]) -> tuple[int, torch.Tensor | None, int, tuple[str, str | None] | None]:
+    def __getitem__(self, key: tuple[int, int]) -> Item:
         epoch, index = key
         try:
             if self.tiles.preparation.augmentation is None:
-                image, label = self.tiles[index]
+                image, target = self.tiles[index]
             else:
                 with torch.random.fork_rng(devices=[]):
                     torch.manual_seed(sample_seed(self.seed, epoch, index))
-                    image, label = self.tiles[index]
+                    image, target = self.tiles[index]
         except DataError as error:
             return index, None, UNLABELLED, (error.what, error.fix)
-        return index, image, label, None
+        return index, image, target, None
 
 
 def sample_seed(seed: int, epoch: int, index: int) -> int:
@@ -75,20 +80,31 @@ def sample_seed(seed: int, epoch: int, index: int) -> int:
     return zlib.crc32(f"{seed}/{epoch}/{index}".encode()) + (seed << 32)
 
 
-def collate(items: list[tuple[int, torch.Tensor | None, int, tuple[str, str | None] | None]]) -> Batch:
-    """Stack the samples that were read; keep the failures apart. Images of another shape than the first fail too."""
+def collate(items: list[Item]) -> Batch:
+    """Stack the samples that were read; keep the failures apart. A sample whose image, or target (a mask, or a
+    label where the first has a mask), has another shape than the first's fails too."""
     good = [item for item in items if item[1] is not None]
     failures = [(index, *problem) for index, image, _, problem in items if image is None]
     if good:
-        shape = good[0][1].shape
+        shape, target_shape = good[0][1].shape, _shape(good[0][2])
         failures += [(index, f"Its image has shape {tuple(image.shape)}, the others {tuple(shape)}",
                       "give images of one size, or a size to resize them to (--input-size)")
                      for index, image, _, _ in good if image.shape != shape]
-        good = [item for item in good if item[1].shape == shape]
+        failures += [(index, f"Its mask has shape {_shape(target)}, the others {target_shape}",
+                      "give every image a mask of its own size, and every sample a mask")
+                     for index, image, target, _ in good if image.shape == shape and _shape(target) != target_shape]
+        good = [item for item in good if item[1].shape == shape and _shape(item[2]) == target_shape]
     if not good:
         return Batch(torch.empty(0, dtype=torch.long), torch.empty(0), torch.empty(0, dtype=torch.long), failures)
-    return Batch(torch.tensor([item[0] for item in good]), torch.stack([item[1] for item in good]),
-                 torch.tensor([item[2] for item in good], dtype=torch.long), failures)
+    targets = [item[2] for item in good]
+    labels = (torch.stack(targets).long() if isinstance(targets[0], torch.Tensor)
+              else torch.tensor(targets, dtype=torch.long))
+    return Batch(torch.tensor([item[0] for item in good]), torch.stack([item[1] for item in good]), labels, failures)
+
+
+def _shape(target: Target) -> tuple[int, ...]:
+    """A mask's shape; () for a class label."""
+    return tuple(target.shape) if isinstance(target, torch.Tensor) else ()
 
 
 @dataclass

@@ -3,8 +3,8 @@
 A cache is a folder with two files:
 
 ``teacher.npy``
-    float16 (samples, classes): the teacher's log-probabilities under the chosen view combination,
-    row ``i`` for sample ``i`` of the training data; memory-mapped, so a run holds only the pages
+    float16 (samples, classes) (a dense teacher: (samples, classes, H, W)): the teacher's log-probabilities
+    under the chosen view combination, row ``i`` for sample ``i`` of the training data; memory-mapped, so a run holds only the pages
     it touches.
 ``key.json``
     what the rows depend on (:class:`CacheKey`: the original's weights, the group, the view
@@ -36,7 +36,7 @@ from orbify.common.safe_io import atomic_write, sha256_file
 from orbify.tuning.distributed import World
 
 CACHE_FORMAT = "orbify-teacher-cache"
-CACHE_VERSION = 1
+CACHE_VERSION = 2
 ROWS_FILE = "teacher.npy"
 KEY_FILE = "key.json"
 
@@ -53,7 +53,7 @@ class CacheKey:
     views: str
     data: str
     samples: int
-    classes: int
+    row_shape: list[int]
 
 
 def weights_digest(model: nn.Module) -> str:
@@ -122,7 +122,7 @@ def _problem(folder: Path, key: CacheKey) -> str | None:
         return "absent" if not rows_file.exists() else "it was never completed"
     try:
         stored = json.loads(key_file.read_text())
-        expected = {"format": CACHE_FORMAT, "version": CACHE_VERSION, "key": asdict(key)}
+        expected = {"format": CACHE_FORMAT, "version": CACHE_VERSION, "key": asdict(key)}   # as JSON stores it
         changed = [name for name in expected if stored.get(name) != expected[name]]
         if changed:
             details = [field for field, value in asdict(key).items() if stored.get("key", {}).get(field) != value]
@@ -130,21 +130,21 @@ def _problem(folder: Path, key: CacheKey) -> str | None:
         shape = tuple(np.load(rows_file, mmap_mode="r").shape)
     except (OSError, ValueError, AttributeError) as error:
         return f"it cannot be read ({type(error).__name__}: {error})"
-    if shape != (key.samples, key.classes):
-        return f"its array has shape {shape}, not {(key.samples, key.classes)}"
+    if shape != (key.samples, *key.row_shape):
+        return f"its array has shape {shape}, not {(key.samples, *key.row_shape)}"
     if rows_file.stat().st_size != stored.get("bytes") or sha256_file(rows_file) != stored.get("sha256"):
         return "its array is truncated or damaged (size or checksum differs)"
     return None
 
 
 def _start(folder: Path, key: CacheKey) -> None:
-    """Remove an old cache and create the (samples, classes) float16 array, filled with NaN."""
+    """Remove an old cache and create the (samples, *row shape) float16 array, filled with NaN."""
     if folder.exists() and not folder.is_dir():
         folder.unlink()
     folder.mkdir(parents=True, exist_ok=True)
     (folder / KEY_FILE).unlink(missing_ok=True)
     rows = np.lib.format.open_memmap(folder / ROWS_FILE, mode="w+", dtype=np.float16,
-                                     shape=(key.samples, key.classes))
+                                     shape=(key.samples, *key.row_shape))
     rows[:] = np.nan
     rows.flush()
     del rows

@@ -27,6 +27,8 @@ from orbify.tuning.distributed import World, fixed_batches
 from orbify.tuning.options import RunSettings, TuneOptions
 from orbify.tuning.records import Evaluation
 from orbify.tuning.samples import BadSamples, Batch, BatchPlan, batch_loader
+from orbify.tuning.teacher import TeacherBatch
+from orbify.verification.segmentation import GroupConfusion, dense_output
 
 RECALIBRATION_IMAGES = 4096
 """Batch-norm statistics are re-estimated on at most this many training images, evenly spread (every process alike)."""
@@ -104,12 +106,14 @@ class Training:
         images = batch.images.to(world.device, non_blocking=True)
         with autocast(settings, world):
             targets = teacher(batch, images).to(world.device, torch.float32)
-            log_probabilities = self.model(images).float().log_softmax(-1)
-        loss = F.kl_div(log_probabilities, targets, log_target=True, reduction="batchmean")
-        labelled = batch.labels != UNLABELLED
-        if options.use_labels and options.label_weight > 0 and bool(labelled.any()):
-            labels = batch.labels[labelled].to(world.device)
-            loss = loss + options.label_weight * F.nll_loss(log_probabilities[labelled.to(world.device)], labels)
+            log_probabilities = dense_output(self.model(images)).float().log_softmax(1)
+        loss = divergence(targets, log_probabilities).mean()
+        labels = batch.labels.to(world.device)
+        if options.use_labels and options.label_weight > 0 and bool((labels != UNLABELLED).any()):
+            weights = (torch.tensor(options.class_weights, device=world.device)
+                       if options.class_weights is not None else None)
+            loss = loss + options.label_weight * F.nll_loss(log_probabilities, labels, weight=weights,
+                                                            ignore_index=UNLABELLED)
         self.optimiser.zero_grad(set_to_none=True)
         loss.backward()
         self.optimiser.step()
@@ -129,6 +133,11 @@ class Training:
         return self.scheduler.get_last_lr()[0]
 
 
+def divergence(teacher: torch.Tensor, log_probabilities: torch.Tensor) -> torch.Tensor:
+    """KL(teacher ‖ student) of log-probabilities with the class axis 1, per sample (per pixel for maps)."""
+    return F.kl_div(log_probabilities, teacher, log_target=True, reduction="none").sum(1)
+
+
 def autocast(settings: RunSettings, world: World) -> contextlib.AbstractContextManager:
     """bfloat16 autocast on a GPU when the precision asks for it; nothing on the CPU."""
     if world.device.type == "cuda" and settings.precision in ("auto", "bf16"):
@@ -146,30 +155,72 @@ def _scheduler(optimiser: torch.optim.Optimizer, options: TuneOptions, total_ste
 
 @torch.no_grad()
 def evaluate(student: nn.Module, val: Tiles, evaluated: Evaluated, group: Group, world: World,
-             settings: RunSettings, batch_size: int, bad: BadSamples) -> Evaluation:
+             settings: RunSettings, batch_size: int, bad: BadSamples,
+             teach_batch: Callable[[torch.Tensor], TeacherBatch]) -> Evaluation:
     """Loss and accuracy (or agreement) on the evaluated samples, upright and moved by the other group elements,
-    summed over every process. ``student`` runs in eval mode; its mode is restored afterwards."""
-    device = world.device
-    sums = torch.zeros(4, dtype=torch.float64)   # loss, correct upright, correct moved, images
+    summed over every process; for a dense model also per-pixel IoU, the masks moved with the images. ``student``
+    runs in eval mode (its mode is restored). ``teach_batch`` runs the teacher on a batch of images: a dense
+    teacher's maps are computed again here rather than kept (see :class:`Evaluated`)."""
     loader = batch_loader(val, BatchPlan(evaluated.ids, world, batch_size), settings.workers, seed=0)
+    tally = _MapTally(group, evaluated.classes) if evaluated.dense else _ClassTally(group)
     with module_mode(student, training=False):
         for batch in loader:
             bad.check(batch)
             if not len(batch):
                 continue
-            where = evaluated.positions(batch.indices)
-            images, targets = batch.images.to(device), evaluated.targets[where].to(device)
+            images = batch.images.to(world.device)
+            if evaluated.dense:
+                taught = teach_batch(images)
+                teacher = taught.log_probabilities
+                targets = batch.labels.to(world.device) if evaluated.labelled else taught.top_class[evaluated.views]
+            else:
+                where = evaluated.positions(batch.indices)
+                teacher, targets = evaluated.teacher[where].to(world.device), evaluated.targets[where].to(world.device)
             for g in range(group.order):
-                log_probabilities = student(group.act_grid(g, images)).float().log_softmax(-1)
-                correct = float((log_probabilities.argmax(-1) == targets).sum())
-                if g == 0:
-                    sums[0] += float(F.kl_div(log_probabilities, evaluated.teacher[where].to(device),
-                                              log_target=True, reduction="sum"))
-                    sums[1] += correct
-                else:
-                    sums[2] += correct
-            sums[3] += len(batch)
-    loss, upright, moved, count = world.sum(sums).tolist()
-    others = group.order - 1
-    return Evaluation(loss / count, upright / count, moved / (count * others) if others else upright / count,
-                      evaluated.measure)
+                scores = dense_output(student(group.act_grid(g, images))).float()
+                moved = group.act_grid(g, targets) if evaluated.dense else targets
+                tally.add(g, scores.log_softmax(1), teacher if g == 0 else None, moved)
+    return tally.evaluation(world, evaluated.measure)
+
+
+class _ClassTally:
+    """Sums of an evaluation of class scores: loss, correct upright, correct moved, images."""
+
+    def __init__(self, group: Group):
+        self.others = group.order - 1
+        self.sums = torch.zeros(4, dtype=torch.float64)
+
+    def add(self, element: int, log_probabilities: torch.Tensor, teacher: torch.Tensor | None,
+            targets: torch.Tensor) -> None:
+        correct = float((log_probabilities.argmax(1) == targets).sum())
+        if element == 0:
+            self.sums += torch.tensor([float(divergence(teacher, log_probabilities).sum()), correct, 0.0,
+                                       len(targets)], dtype=torch.float64)
+        else:
+            self.sums[2] += correct
+
+    def evaluation(self, world: World, measure: str) -> Evaluation:
+        loss, upright, moved, count = world.sum(self.sums).tolist()
+        transformed = moved / (count * self.others) if self.others else upright / count
+        return Evaluation(loss / count, upright / count, transformed, measure)
+
+
+class _MapTally:
+    """Sums of an evaluation of class maps: the divergence per pixel upright, and a confusion matrix per element."""
+
+    def __init__(self, group: Group, classes: int):
+        self.confusions = GroupConfusion(group, classes)
+        self.loss = torch.zeros(2, dtype=torch.float64)   # summed divergence, pixels
+
+    def add(self, element: int, log_probabilities: torch.Tensor, teacher: torch.Tensor | None,
+            targets: torch.Tensor) -> None:
+        if element == 0:
+            per_pixel = divergence(teacher, log_probabilities)
+            self.loss += torch.tensor([float(per_pixel.sum()), per_pixel.numel()], dtype=torch.float64)
+        self.confusions.add(element, log_probabilities, targets)
+
+    def evaluation(self, world: World, measure: str) -> Evaluation:
+        loss, pixels = world.sum(self.loss).tolist()
+        self.confusions.matrices = world.sum(self.confusions.matrices).long()
+        scores = self.confusions.scores()
+        return Evaluation(loss / pixels, scores.upright.accuracy, scores.moved_accuracy, measure, scores)

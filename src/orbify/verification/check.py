@@ -40,6 +40,7 @@ from orbify.symmetry.layouts import Layout, Orbit, act
 from orbify.symmetry.resample import central_disk_mask
 from orbify.verification.approximate import SmoothPattern
 from orbify.verification.measure import count_macs, count_params, state_dict_bytes
+from orbify.verification.segmentation import GroupScores, dense_output, group_scores
 
 RANDOM_SAMPLES = 4
 """Number of random normal images used when no inputs are given."""
@@ -114,6 +115,7 @@ class CheckReport:
     notes: list[str] = field(default_factory=list)
     first_layer: FirstLayerFilters | None = None
     original_weights_known: bool = True   # False: drift and the original's accuracy were not measured (None)
+    segmentation: dict[str, GroupScores] | None = None   # map head with masks: "original", "converted"
 
     @property
     def param_ratio(self) -> float:
@@ -134,6 +136,8 @@ class CheckReport:
         """JSON-ready figures (the plotted filters are left out)."""
         data = asdict(self)
         data.pop("first_layer")
+        if self.segmentation is not None:
+            data["segmentation"] = {name: scores.to_dict() for name, scores in self.segmentation.items()}
         size = data.pop("size")
         worst = self.worst_layer
         data.update(
@@ -211,6 +215,8 @@ def check_model(converted: nn.Module, original: nn.Module, plan: ConversionPlan,
         roundings=list(plan.roundings), notes=list(plan.notes) + drift.pop("notes"),
         first_layer=_first_layer_filters(converted, original, plan, group) if original_weights_known else None,
         original_weights_known=original_weights_known, **drift,
+        segmentation=_segmentation(converted32, original32 if original_weights_known else None, images, inputs,
+                                   group, batch_size) if dense else None,
     )
 
 
@@ -264,12 +270,15 @@ def _equivariance(model: nn.Module, layouts: dict[str, Layout], group: Group, im
 
     Each error is ``sqrt(Σ‖f(g·x) − g·f(x)‖²) / sqrt(Σ‖f(x)‖²)`` summed over the batches, so it does not
     depend on the batch size; the identity (element 0) is not run and counts as 0. A dense output moves with
-    the input (``map`` head); otherwise it should not change at all.
+    the input (``map`` head); otherwise it should not change at all. Every tensor of a tuple, list or dict
+    output is measured (a segmentation model's ``out`` and ``aux``), each against its own norm, and the
+    output's error of an element is the largest of them.
     """
     order = group.order
     layer_diff = {target: [0.0] * order for target in layouts}
     layer_norm = dict.fromkeys(layouts, 0.0)
-    out_diff, out_norm = [0.0] * order, 0.0
+    out_diff: list[list[float]] = []   # per output tensor, per element
+    out_norm: list[float] = []
     reference: dict[str, torch.Tensor] = {}
     current = {"g": None}
 
@@ -291,19 +300,23 @@ def _equivariance(model: nn.Module, layouts: dict[str, Layout], group: Group, im
         with torch.no_grad():
             for batch in images.split(batch_size):
                 current["g"] = None
-                y = _first_tensor(model(batch))
-                out_norm += _masked_norm(y, group) ** 2
+                outputs = _output_tensors(model(batch))
+                if not out_norm:
+                    out_diff, out_norm = [[0.0] * order for _ in outputs], [0.0] * len(outputs)
+                for i, y in enumerate(outputs):
+                    out_norm[i] += _masked_norm(y, group) ** 2
                 for g in range(1, order):   # element 0 is the identity: its error is 0 by definition
                     current["g"] = g
-                    yg = _first_tensor(model(group.act_grid(g, batch)))
-                    expected = group.act_grid(g, y) if dense_output else y
-                    out_diff[g] += _masked_norm(yg - expected, group) ** 2
+                    for i, (y, yg) in enumerate(zip(outputs, _output_tensors(model(group.act_grid(g, batch))))):
+                        expected = group.act_grid(g, y) if dense_output else y
+                        out_diff[i][g] += _masked_norm(yg - expected, group) ** 2
                 reference.clear()
     finally:
         for handle in handles:
             handle.remove()
     layer_errors = {t: [_ratio(d, layer_norm[t]) for d in diffs] for t, diffs in layer_diff.items()}
-    return layer_errors, [_ratio(d, out_norm) for d in out_diff]
+    output_errors = [max(_ratio(diffs[g], norm) for diffs, norm in zip(out_diff, out_norm)) for g in range(order)]
+    return layer_errors, output_errors
 
 
 def _masked_norm(x: torch.Tensor, group: Group) -> float:
@@ -322,14 +335,24 @@ def _ratio(diff_squared: float, norm_squared: float) -> float:
 
 def _first_tensor(output) -> torch.Tensor:
     """The model output, or the first tensor of a tuple/list/dict output."""
-    if isinstance(output, torch.Tensor):
-        return output
-    values = output.values() if isinstance(output, dict) else output
-    for value in values:
-        if isinstance(value, torch.Tensor):
-            return value
-    raise InputShapeError("The model returns no tensor", where="check_model",
-                          fix="check a model whose forward returns a tensor (or a tuple/dict holding one)")
+    return _output_tensors(output)[0]
+
+
+def _output_tensors(output) -> list[torch.Tensor]:
+    """Every tensor of a model output, in order: the output itself, or those of a (nested) tuple/list/dict."""
+    tensors = _tensors_in(output)
+    if not tensors:
+        raise InputShapeError("The model returns no tensor", where="check_model",
+                              fix="check a model whose forward returns a tensor (or a tuple/dict holding one)")
+    return tensors
+
+
+def _tensors_in(value) -> list[torch.Tensor]:
+    if isinstance(value, torch.Tensor):
+        return [value]
+    if isinstance(value, dict):
+        value = list(value.values())
+    return [tensor for item in value for tensor in _tensors_in(item)] if isinstance(value, (list, tuple)) else []
 
 
 def _layer_check(layer, errors: list[float] | None, calibration_error: float | None) -> LayerCheck:
@@ -372,6 +395,20 @@ def _accuracy(logits: torch.Tensor, labels: torch.Tensor | None) -> float | None
     if labels is None or logits.dim() != 2 or int(labels.max()) >= logits.shape[1]:
         return None
     return float((logits.argmax(1) == labels.to(logits.device)).double().mean())
+
+
+def _segmentation(converted: nn.Module, original: nn.Module | None, images: torch.Tensor, inputs, group: Group,
+                  batch_size: int) -> dict[str, GroupScores] | None:
+    """Per-pixel accuracy and IoU of each model against the masks of an ImageSet (None without masks), the images
+    and masks moved by every element (:mod:`orbify.verification.segmentation`)."""
+    masks = inputs.masks if isinstance(inputs, ImageSet) else None
+    if masks is None:
+        return None
+    models = {"original": original, "converted": converted}
+    batches = list(zip(images.split(batch_size), masks.split(batch_size)))
+    with torch.no_grad():
+        classes = dense_output(converted(images[:1])).shape[1]
+    return {name: group_scores(model, batches, group, classes) for name, model in models.items() if model is not None}
 
 
 # -- sizes and filters -------------------------------------------------------------------------------

@@ -79,6 +79,7 @@ def check_sections(report: CheckReport) -> list[tuple[str, tuple[str, ...], list
             ("strided layers that break", ", ".join(size.violations) or "-"),
             ("nearest safe sizes", ", ".join(map(str, size.safe_sizes)) or "-"),
         ]),
+        *_segmentation_sections(report),
         _layer_section(report),
     ]
     notes = report.roundings + report.notes
@@ -104,6 +105,18 @@ def _drift_rows(report: CheckReport) -> list[tuple[str, str]]:
          f"{measured(percent(report.accuracy_before))} → {percent(report.accuracy_after)}"),
         ("inputs", report.inputs),
     ] + ([] if known else [("why not measured", "the original's trained weights were not given")])
+
+
+def _segmentation_sections(report: CheckReport) -> list[tuple[str, tuple[str, ...], list[tuple[str, ...]]]]:
+    """Per-pixel accuracy and mean IoU of each model against the given masks (dense models), upright and moved."""
+    if not report.segmentation:
+        return []
+    header = ("model", "pixel accuracy upright", "pixel accuracy moved", "mean IoU upright", "mean IoU moved (mean)",
+              "mean IoU worst element")
+    rows = [(name, percent(s.upright.accuracy), percent(s.moved_accuracy), percent(s.upright.mean_iou),
+             percent(s.moved_mean_iou), percent(s.worst_iou)) for name, s in report.segmentation.items()]
+    return [(f"Segmentation against the given masks (moved with the images by each of {len(report.elements)} "
+             "elements)", header, rows)]
 
 
 def _layer_section(report: CheckReport) -> tuple[str, tuple[str, ...], list[tuple[str, ...]]]:

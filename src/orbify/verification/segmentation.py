@@ -95,6 +95,11 @@ class GroupScores:
         """Per-pixel accuracy averaged over the moved copies."""
         return sum(s.accuracy for s in self.moved) / len(self.moved) if self.moved else self.upright.accuracy
 
+    @classmethod
+    def restore(cls, fields: dict) -> "GroupScores":
+        """The scores of their ``dataclasses.asdict`` form."""
+        return cls(SegmentationScores(**fields["upright"]), tuple(SegmentationScores(**s) for s in fields["moved"]))
+
     def to_dict(self) -> dict:
         return {"upright": vars(self.upright) | {"class_iou": list(self.upright.class_iou)},
                 "moved_mean_iou": self.moved_mean_iou, "worst_iou": self.worst_iou,
