@@ -13,6 +13,7 @@ from torch.fx.passes.shape_prop import ShapeProp
 
 from orbify.common.modes import module_mode
 from orbify.errors import InputShapeError, TraceError
+from orbify.graph.functional_layers import modularise_functional_layers
 
 
 class _Tracer(fx.Tracer):
@@ -32,7 +33,8 @@ def trace(model: nn.Module, example_input: torch.Tensor | None = None,
     """Trace a *copy* of ``model`` symbolically and, given an example input, record every node's shape.
 
     The returned GraphModule owns its submodules, so the caller may replace them without touching
-    ``model``. Untraceable models raise :class:`TraceError` naming the failing code.
+    ``model``. Functional norm, linear and conv calls on the model's own tensors become modules
+    (:mod:`orbify.graph.functional_layers`). Untraceable models raise :class:`TraceError` naming the failing code.
     """
     model = copy.deepcopy(model)
     tracer = _Tracer(tuple(leaf_types))
@@ -48,6 +50,7 @@ def trace(model: nn.Module, example_input: torch.Tensor | None = None,
     gm = fx.GraphModule(tracer.root, graph, type(model).__name__)
     if example_input is not None:
         propagate_shapes(gm, example_input)
+    modularise_functional_layers(gm)
     return gm
 
 
