@@ -9,6 +9,8 @@ cover the recipe:
   (b) the architecture converts end to end with all of the recipe's other settings, and its logits'
       invariance error is ≤ 1e-5 in float64 after batch-norm recalibration on random inputs, at the
       architecture's smallest safe size (SMALL_SAFE; the bundled example at its recipe's own 33 pixels).
+      A map-head recipe (the segmentation models) checks equivariance instead: each output map ('out', 'aux')
+      moves as the image does.
 A safe size makes every strided op commute exactly with the group, at any size: convolutions and
 pools are the same ops at 33 and at 225 pixels, so (a) and (b) together stand for the conversion
 at the recipe's size.
@@ -46,12 +48,15 @@ SMALL_SAFE = {
     "efficientnet_b0": 33, "efficientnet_b1": 33, "efficientnet_b2": 33, "efficientnet_b3": 33,
     "regnet_x_400mf": 33, "regnet_y_400mf": 33, "regnet_x_800mf": 33, "regnet_y_800mf": 33,
     "squeezenet1_0": 35, "squeezenet1_1": 31, "alexnet": 63,
+    "fcn_resnet50": 9, "fcn_resnet101": 9, "deeplabv3_resnet50": 9, "deeplabv3_resnet101": 9,
+    "deeplabv3_mobilenet_v3_large": 17, "lraspp_mobilenet_v3_large": 17,
 }
 # The bundled example, converted at its recipe's own size (33 pixels, its tiles' size).
 AT_RECIPE_SIZE = {"example", "orbify.example.model:build_example_cnn"}
 # The slowest cases, 4–10 s each on 2 cores (building the models and converting their large fully connected
 # layers dominate).
-SLOW = {"vgg11_bn", "vgg13_bn", "vgg16_bn", "vgg19_bn", "wide_resnet50_2", "alexnet"}
+SLOW = {"vgg11_bn", "vgg13_bn", "vgg16_bn", "vgg19_bn", "wide_resnet50_2", "alexnet", "fcn_resnet101",
+        "deeplabv3_resnet101"}
 
 CASES = [(recipe.name, architecture) for recipe in list_recipes() for architecture in recipe.architectures]
 
@@ -79,14 +84,20 @@ def moved(group, x):
                       for k, mirror in group.elements])
 
 
-def invariance_error(model, group, x, dtype=torch.float64) -> float:
+def invariance_error(model, group, x, dtype=torch.float64, head="invariant") -> float:
     """max_g ‖f(g·x) − f(x)‖/‖f(x)‖, every view in one batch, tied weights expanded once. In float64 by
     default: random-weight backbones amplify float32 rounding to ~1e-5 relative even in the plain model,
-    float64 isolates the conversion's structural error."""
+    float64 isolates the conversion's structural error. For a map head, f(x) is moved by g as the images are
+    (‖f(g·x) − g·f(x)‖/‖g·f(x)‖), and every map of a dict output counts (the largest error)."""
     model, x = model.to(dtype), x.to(dtype)
     with torch.no_grad(), parametrize.cached():
-        y = model(moved(group, x)).unflatten(0, (group.order, len(x)))
-    return max(float((y[a] - y[0]).norm() / y[0].norm()) for a in range(1, group.order))
+        output = model(moved(group, x))
+    errors = []
+    for y in output.values() if isinstance(output, dict) else [output]:
+        y = y.unflatten(0, (group.order, len(x)))
+        expected = moved(group, y[0]).unflatten(0, (group.order, len(x))) if head == "map" else y[:1].expand_as(y)
+        errors += [float((y[a] - expected[a]).norm() / expected[a].norm()) for a in range(1, group.order)]
+    return max(errors)
 
 
 def test_every_shipped_architecture_has_a_small_safe_size():
@@ -117,9 +128,9 @@ def test_recipe_converts_its_architecture_invariantly(recipe_name, architecture)
                                                                 options["init"])
     assert plan.stop_at == options["stop_at"] and plan.match == options["match"]
     calibrated(converted, size)
-    assert invariance_error(converted, group, x) <= TOL
+    assert invariance_error(converted, group, x, head=plan.head) <= TOL
     # the plain original is not invariant, so the check above can fail (float32 is enough to see that)
-    assert invariance_error(calibrated(original, size), group, x, torch.float32) > 1e-3
+    assert invariance_error(calibrated(original, size), group, x, torch.float32, plan.head) > 1e-3
 
 
 def test_example_recipe_on_the_trained_example_model():

@@ -13,7 +13,7 @@ from orbify.cli.app import app, console
 from orbify.cli.models import Trust, read_converted, read_model
 from orbify.cli.options import SOURCE_HELP, ForceOption, TrustOption, TrustSourceOption, WeightsOption
 from orbify.errors import ExportError
-from orbify.files.export import FORMATS, export_model, run_exported
+from orbify.files.export import FORMATS, export_model, output_difference, run_exported
 from orbify.files.saving import is_converted_file
 from orbify.files.sources import IMAGENET_SIZE
 
@@ -60,12 +60,12 @@ def export(
 
 
 def _difference(module: torch.nn.Module, path: Path, format: str, example: torch.Tensor) -> str:
-    """How far the exported file's output is from the model's on two inputs (a relative max difference)."""
+    """How far the exported file's output is from the model's on two inputs (a relative max difference; the
+    largest over the tensors of a dict or tuple output)."""
     inputs = torch.cat([example, torch.randn_like(example)])
-    try:
-        exported = run_exported(path, format, inputs)
-    except ExportError as error:
-        return f"not checked: {error.what}"
     with torch.no_grad():
         expected = module.eval()(inputs)
-    return f"{float((exported - expected).abs().max() / expected.abs().max().clamp_min(1e-30)):.1e}"
+    try:
+        return f"{output_difference(run_exported(path, format, inputs), expected):.1e}"
+    except ExportError as error:
+        return f"not checked: {error.what}"

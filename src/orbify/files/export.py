@@ -15,13 +15,21 @@ The batch axis stays free in pt2 and ONNX files (any batch size); the other axes
 example input's shape, which should be a safe size (see :func:`orbify.safe_sizes`) for the model
 to stay exactly equivariant. Files are written atomically and never replace an existing file
 without ``force``.
+
+A model may return a tensor, a dict of tensors (torchvision's segmentation models: ``out`` and
+``aux``) or a tuple/list of tensors; every format keeps the structure. An ONNX file names its
+outputs by the dict's keys (``output`` for one tensor, ``output_0``, ``output_1``, ... for a
+sequence) and records the structure in its metadata (:data:`ONNX_STRUCTURE_KEY`), so that
+:func:`run_exported` returns what the model returns.
 """
 
 from __future__ import annotations
 
 import io
 import warnings
+from collections.abc import Mapping
 from pathlib import Path
+from typing import Union
 
 import torch
 from torch import nn
@@ -34,6 +42,11 @@ from orbify.layers.bake import bake_model
 FORMATS = ("pt2", "torchscript", "onnx")
 SUFFIXES = {"pt2": ".pt2", "torchscript": ".pt", "onnx": ".onnx"}
 _EXPORT_EXTRA = "pip install 'orbify[export]' (the onnx, onnxscript and onnxruntime packages)"
+ONNX_STRUCTURE_KEY = "orbify_output_structure"
+"""ONNX metadata key: "tensor", "dict" (outputs named by its keys) or "sequence" (a tuple of the outputs)."""
+
+Output = Union[torch.Tensor, dict, tuple]
+"""What a model returns: a tensor, a dict of tensors or a tuple of tensors."""
 
 
 def export_model(module: nn.Module, example_input: torch.Tensor, path: PathLike, format: str = "pt2", *,
@@ -99,7 +112,8 @@ def _torchscript_bytes(baked: nn.Module, example_input: torch.Tensor) -> bytes:
         # TorchScript is deprecated upstream; it is exported because it was asked for by name.
         warnings.filterwarnings("ignore", message=r"`torch\.jit\.\w+` is deprecated")
         try:
-            traced = torch.jit.trace(baked, (example_input,), check_trace=False)
+            # strict=False lets a dict output through (its keys do not depend on the input)
+            traced = torch.jit.trace(baked, (example_input,), check_trace=False, strict=False)
         except Exception as error:
             raise _failed("TorchScript (torch.jit.trace)", error) from error
         buffer = io.BytesIO()
@@ -114,15 +128,29 @@ def _onnx_bytes(baked: nn.Module, example_input: torch.Tensor) -> bytes:
     except ImportError as error:
         raise ExportError(f"ONNX export needs the package {error.name!r}, which is not installed",
                           fix=_EXPORT_EXTRA) from error
+    example = _batch_of_two(example_input)
+    names, structure = _onnx_outputs(baked(example))
     try:
-        program = torch.onnx.export(baked, (_batch_of_two(example_input),), dynamo=True, verbose=False,
-                                    input_names=["input"], output_names=["output"],
-                                    dynamic_shapes=_dynamic_batch())
+        program = torch.onnx.export(baked, (example,), dynamo=True, verbose=False, input_names=["input"],
+                                    output_names=names, dynamic_shapes=_dynamic_batch())
     except Exception as error:
         raise _failed("ONNX (torch.onnx.export)", error) from error
+    program.model.metadata_props[ONNX_STRUCTURE_KEY] = structure
     buffer = io.BytesIO()
     program.save(buffer, external_data=False)
     return buffer.getvalue()
+
+
+def _onnx_outputs(output: Output) -> tuple[list[str], str]:
+    """The ONNX output names of a model output and its structure (:data:`ONNX_STRUCTURE_KEY`)."""
+    if isinstance(output, torch.Tensor):
+        return ["output"], "tensor"
+    if isinstance(output, Mapping) and all(isinstance(v, torch.Tensor) for v in output.values()):
+        return [str(key) for key in output], "dict"
+    if isinstance(output, (list, tuple)) and all(isinstance(v, torch.Tensor) for v in output):
+        return [f"output_{i}" for i in range(len(output))], "sequence"
+    raise ExportError(f"ONNX export takes a model returning a tensor, or a dict, tuple or list of tensors; this one "
+                      f"returns a {type(output).__name__} holding other values", fix="try --format pt2")
 
 
 def _failed(exporter: str, error: Exception) -> ExportError:
@@ -133,20 +161,22 @@ def _failed(exporter: str, error: Exception) -> ExportError:
                            "exporter's full message")
 
 
-def run_exported(path: PathLike, format: str, inputs: torch.Tensor) -> torch.Tensor:
+def run_exported(path: PathLike, format: str, inputs: torch.Tensor) -> Output:
     """Run an exported file on ``inputs`` the way a user without orbify would, and return its output.
 
     pt2 runs ``torch.export.load(path).module()``, TorchScript ``torch.jit.load(path)`` and ONNX
-    an ``onnxruntime`` CPU session. Raises :class:`ExportError` when onnxruntime is missing.
+    an ``onnxruntime`` CPU session. The output has the model's structure: a tensor, a dict (a plain
+    ``dict``) or a tuple (files written before ONNX structures were recorded give their first output).
+    Raises :class:`ExportError` when onnxruntime is missing.
     """
     check_choice("format", format, FORMATS)
     with torch.no_grad():
         if format == "pt2":
-            return torch.export.load(path).module()(inputs)
+            return _plain(torch.export.load(path).module()(inputs))
         if format == "torchscript":
             with warnings.catch_warnings():
                 warnings.filterwarnings("ignore", message=r"`torch\.jit\.\w+` is deprecated")
-                return torch.jit.load(path, map_location="cpu")(inputs)
+                return _plain(torch.jit.load(path, map_location="cpu")(inputs))
     try:
         import onnxruntime
     except ImportError as error:
@@ -154,7 +184,49 @@ def run_exported(path: PathLike, format: str, inputs: torch.Tensor) -> torch.Ten
                           fix=_EXPORT_EXTRA) from error
     session = onnxruntime.InferenceSession(str(path), providers=["CPUExecutionProvider"])
     name = session.get_inputs()[0].name
-    return torch.from_numpy(session.run(None, {name: inputs.detach().cpu().numpy()})[0])
+    outputs = [torch.from_numpy(value) for value in session.run(None, {name: inputs.detach().cpu().numpy()})]
+    structure = session.get_modelmeta().custom_metadata_map.get(ONNX_STRUCTURE_KEY, "tensor")
+    if structure == "dict":
+        return dict(zip([output.name for output in session.get_outputs()], outputs))
+    return tuple(outputs) if structure == "sequence" else outputs[0]
 
 
-__all__ = ["FORMATS", "SUFFIXES", "export_model", "run_exported"]
+def _plain(output: Output) -> Output:
+    """A loaded program's output with plain containers (torch.export gives immutable ones)."""
+    if isinstance(output, Mapping):
+        return dict(output)
+    return tuple(output) if isinstance(output, (list, tuple)) else output
+
+
+def output_difference(exported: Output, expected: Output) -> float:
+    """The largest ``max |Δ| / max |y|`` over the tensors of two outputs of the same structure.
+
+    Raises :class:`ExportError` when the structures differ (other keys, another number of tensors, other shapes).
+    """
+    pairs = _paired(exported, expected)
+    return max(float((a - b).abs().max() / b.abs().max().clamp_min(1e-30)) for a, b in pairs)
+
+
+def _paired(exported: Output, expected: Output) -> list[tuple[torch.Tensor, torch.Tensor]]:
+    if isinstance(expected, Mapping) and isinstance(exported, Mapping) and list(exported) == list(expected):
+        pairs = [(exported[key], expected[key]) for key in expected]
+    elif isinstance(expected, (list, tuple)) and isinstance(exported, (list, tuple)) and len(exported) == len(expected):
+        pairs = list(zip(exported, expected))
+    else:
+        pairs = [(exported, expected)]
+    if not all(isinstance(a, torch.Tensor) and isinstance(b, torch.Tensor) and a.shape == b.shape for a, b in pairs):
+        raise ExportError(f"The exported file returns a {_described(exported)} where the model returns a "
+                          f"{_described(expected)}", fix="export again; report it if it persists")
+    return pairs
+
+
+def _described(output: Output) -> str:
+    if isinstance(output, torch.Tensor):
+        return f"tensor of shape {tuple(output.shape)}"
+    if isinstance(output, Mapping):
+        return f"dict with keys {list(output)}"
+    return f"{type(output).__name__} of {len(output)}" if isinstance(output, (list, tuple)) else type(output).__name__
+
+
+__all__ = ["FORMATS", "ONNX_STRUCTURE_KEY", "SUFFIXES", "Output", "export_model", "output_difference",
+           "run_exported"]

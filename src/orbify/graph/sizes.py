@@ -1,15 +1,21 @@
 """Safe input sizes: where every strided op samples a grid that the rotations map onto itself.
 
 A strided conv or pool commutes with 90° rotations exactly when ``H + 2·padding − dilation·(k−1) − 1``
-is divisible by the stride, in both spatial axes (docs/design.md §6). A transposed conv is
-symmetric when it has no output padding. Shapes are propagated on the ``meta`` device, so checking
-a size costs no arithmetic.
+is divisible by the stride, in both spatial axes (docs/design.md §6); dilated convs without a
+stride (the dilated backbones and atrous pyramids of segmentation models) keep every size exact.
+A transposed conv is symmetric when it has no output padding. A resampling (``F.interpolate``,
+``nn.Upsample``) is symmetric when its sampling grid is: bilinear or bicubic to a given ``size``
+(either ``align_corners``) always is, nearest only when it enlarges by a whole factor, a ``scale_factor`` only
+when the output side is exactly the input side times the factor. Shapes are propagated on the
+``meta`` device, so checking a size costs no arithmetic but for resamplings, each of which is
+probed on one random channel of its input size (:func:`resampling_break`).
 """
 
 from __future__ import annotations
 
 import copy
 from dataclasses import dataclass
+from typing import Callable, Union
 
 import torch
 import torch.nn.functional as F
@@ -29,10 +35,36 @@ class StrideViolation:
     kernel: tuple[int, int]
     stride: tuple[int, int]
     padding: tuple[int, int]
+    dilation: tuple[int, int] = (1, 1)
 
     def __str__(self) -> str:
-        return (f"{self.where}: input {self.size[0]}×{self.size[1]}, kernel {self.kernel}, stride {self.stride}, "
-                f"padding {self.padding} — (H + 2·padding − kernel) is not divisible by the stride")
+        shape = (f"{self.where}: input {self.size[0]}×{self.size[1]}, kernel {self.kernel}, stride {self.stride}, "
+                 f"padding {self.padding}")
+        if self.dilation == (1, 1):
+            return f"{shape} — (H + 2·padding − kernel) is not divisible by the stride"
+        return (f"{shape}, dilation {self.dilation} — (H + 2·padding − dilation·(kernel − 1) − 1) is not divisible "
+                "by the stride")
+
+
+@dataclass(frozen=True)
+class ResamplingViolation:
+    """One resampling (interpolation) whose sampling grid is not symmetric at the checked input size."""
+
+    node: str
+    where: str
+    size: tuple[int, int]
+    output: tuple[int, int]
+    broken: str                        # the grid move it does not commute with, in words
+
+    def __str__(self) -> str:
+        return (f"{self.where}: resampling {self.size[0]}×{self.size[1]} to {self.output[0]}×{self.output[1]} does "
+                f"not commute with {self.broken} — its sampling grid is not symmetric (nearest is exact only when it "
+                "enlarges by a whole factor, a scale_factor only where it gives whole sides; bilinear to a given size "
+                "always is)")
+
+
+Violation = Union[StrideViolation, ResamplingViolation]
+"""An op that breaks equivariance at a checked input size; ``node`` names it, ``str()`` says why."""
 
 
 def _pair(v) -> tuple[int, int]:
@@ -45,12 +77,52 @@ def _geometry(node: fx.Node, module: nn.Module | None) -> tuple | None:
         dilation = getattr(module, "dilation", 1)
         return _pair(module.kernel_size), _pair(module.stride), _pair(module.padding), _pair(dilation)
     if node.op == "call_function" and node.target in (F.max_pool2d, F.avg_pool2d):
-        args = list(node.args) + [None] * 4
+        args = list(node.args) + [None] * 5
         kernel = node.kwargs.get("kernel_size", args[1])
         stride = node.kwargs.get("stride", args[2]) or kernel
         padding = node.kwargs.get("padding", args[3] if args[3] is not None else 0)
-        return _pair(kernel), _pair(stride), _pair(padding), (1, 1)
+        dilation = node.kwargs.get("dilation", args[4]) if node.target is F.max_pool2d else None
+        return _pair(kernel), _pair(stride), _pair(padding), _pair(dilation or 1)
     return None
+
+
+_MOVES = (("a mirror along the width", lambda t: t.flip(-1)), ("a mirror along the height", lambda t: t.flip(-2)),
+          ("a transposition (the quarter turns)", lambda t: t.transpose(-2, -1)))
+
+
+def resampling_break(resample: Callable[[torch.Tensor], torch.Tensor], size: tuple[int, int]) -> str | None:
+    """The grid move (in words) that ``resample`` does not commute with at input ``size``; None when it commutes.
+
+    ``resample`` maps a (1, 1, H, W) float64 map to its resampled map as the model's op does. It runs on a
+    seeded random map and on that map mirrored along each axis and (square sizes) transposed: the two
+    mirrors and the transposition generate every quarter turn and mirror, so an op commuting with them is
+    exact under d4 and each of its subgroups.
+    """
+    probe = torch.randn(1, 1, *size, dtype=torch.float64, generator=torch.Generator().manual_seed(0))
+    with torch.no_grad():
+        reference = resample(probe)
+        for words, move in _MOVES[:3 if size[0] == size[1] else 2]:
+            moved, expected = resample(move(probe)), move(reference)
+            if moved.shape != expected.shape or not torch.allclose(moved, expected, rtol=1e-9, atol=1e-12):
+                return words
+    return None
+
+
+def _is_resampling(node: fx.Node, module: nn.Module | None) -> bool:
+    return isinstance(module, nn.Upsample) or (node.op == "call_function" and node.target is F.interpolate)
+
+
+def _resampler(module: nn.Module | None, args: tuple, kwargs: dict) -> Callable | None:
+    """A resampling node's op as a function of its input map alone (``module``: an ``nn.Upsample``, else
+    ``F.interpolate`` with ``args`` and ``kwargs``); None for an input that is not a batch of 2-d maps, or
+    when an argument besides the input is a tensor (it lives on the meta device and cannot be probed).
+    """
+    leaves: list = []
+    fx.node.map_aggregate((args[1:], kwargs), leaves.append)
+    if not args or not isinstance(args[0], torch.Tensor) or args[0].dim() != 4 \
+            or any(isinstance(leaf, torch.Tensor) for leaf in leaves):
+        return None
+    return module if module is not None else (lambda t: F.interpolate(t, *args[1:], **kwargs))
 
 
 _SHAPE_KEEPING = (nn.modules.batchnorm._BatchNorm, nn.ReLU, nn.ReLU6, nn.SiLU, nn.GELU, nn.Hardswish,
@@ -64,7 +136,7 @@ class _FirstViolation(Exception):
 class _Checker(fx.Interpreter):
     def __init__(self, gm: fx.GraphModule, first_only: bool = False):
         super().__init__(gm)
-        self.violations: list[StrideViolation] = []
+        self.violations: list[Violation] = []
         self.first_only = first_only
         self.extra_traceback = not first_only
 
@@ -81,38 +153,54 @@ class _Checker(fx.Interpreter):
             x = self.env[node.all_input_nodes[0]]
             self._add(StrideViolation(node.name, describe(node), tuple(x.shape[-2:]), _pair(module.kernel_size),
                                       _pair(module.stride), _pair(module.padding)))
-        return super().run_node(node)
+        output = super().run_node(node)
+        self._check_resampling(node, module, output)
+        return output
 
     def _check(self, node, size, kernel, stride, padding, dilation) -> None:
         if all(s == 1 for s in stride):
             return
         for h, k, s, p, d in zip(size, kernel, stride, padding, dilation):
             if (h + 2 * p - d * (k - 1) - 1) % s:
-                self._add(StrideViolation(node.name, describe(node), size, kernel, stride, padding))
+                self._add(StrideViolation(node.name, describe(node), size, kernel, stride, padding, dilation))
                 return
 
-    def _add(self, violation: StrideViolation) -> None:
+    def _check_resampling(self, node: fx.Node, module: nn.Module | None, output) -> None:
+        if not _is_resampling(node, module):
+            return
+        args, kwargs = self.fetch_args_kwargs_from_env(node)
+        resample = _resampler(module, args, kwargs)
+        if resample is None:
+            return
+        size = tuple(args[0].shape[-2:])
+        broken = resampling_break(resample, size)
+        if broken is not None:
+            self._add(ResamplingViolation(node.name, describe(node), size, tuple(output.shape[-2:]), broken))
+
+    def _add(self, violation: Violation) -> None:
         self.violations.append(violation)
         if self.first_only:
             raise _FirstViolation
 
 
 class SizeChecker:
-    """Checks input sizes of one model; trace once, check many sizes."""
+    """Checks input sizes of one model; trace once, check many sizes (inputs in the dtype of its parameters)."""
 
     def __init__(self, model: nn.Module, channels: int = 3):
         gm = model if isinstance(model, fx.GraphModule) else trace(model)
         self.gm = copy.deepcopy(gm).to("meta").eval()
         self.channels = channels
+        floats = (p.dtype for p in self.gm.parameters() if p.is_floating_point())
+        self.dtype = next(floats, torch.float32)
 
-    def violations(self, size: int | tuple[int, int], first_only: bool = False) -> list[StrideViolation]:
-        """Strided ops that break equivariance at this input size (empty when the size is safe)."""
+    def violations(self, size: int | tuple[int, int], first_only: bool = False) -> list[Violation]:
+        """Strided ops and resamplings that break equivariance at this input size (empty when the size is safe)."""
         h, w = _pair(size)
         checker = _Checker(self.gm, first_only)
         shape = (1, self.channels, h, w)
         try:
             with torch.no_grad():
-                checker.run(torch.empty(shape, device="meta"))
+                checker.run(torch.empty(shape, device="meta", dtype=self.dtype))
         except _FirstViolation:
             pass
         except Exception as error:
