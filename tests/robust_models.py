@@ -20,17 +20,17 @@ class Branchy(nn.Module):
 
 
 class Shuffle(nn.Module):
-    """A channel shuffle that is not at orbit granularity."""
+    """A channel shuffle whose groups of 3 channels cut orbits of 4 (c4): it cannot be made to move whole orbits."""
 
     def __init__(self):
         super().__init__()
-        self.conv = nn.Conv2d(3, 16, 3, padding=1)
-        self.fc = nn.Linear(16, 2)
+        self.conv = nn.Conv2d(3, 12, 3, padding=1)
+        self.fc = nn.Linear(12, 2)
 
     def forward(self, x):
         y = self.conv(x)
         b, c, h, w = y.shape
-        y = y.view(b, 2, c // 2, h, w).transpose(1, 2).reshape(b, c, h, w)
+        y = y.view(b, 4, c // 4, h, w).transpose(1, 2).reshape(b, c, h, w)
         return self.fc(y.mean((2, 3)))
 
 

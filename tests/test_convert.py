@@ -20,6 +20,7 @@ TOL = 1e-5
 SMALL_SAFE = {
     "resnet18": 33, "resnet50": 33, "vgg11_bn": 32, "mobilenet_v2": 33, "mobilenet_v3_small": 33,
     "densenet121": 29, "efficientnet_b0": 33, "regnet_x_400mf": 33, "squeezenet1_1": 31, "alexnet": 63,
+    "shufflenet_v2_x0_5": 33,
 }
 HEAVY = {"resnet50", "vgg11_bn", "densenet121"}
 

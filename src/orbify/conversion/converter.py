@@ -22,6 +22,7 @@ from orbify.conversion.layer_converter import LayerConverter
 from orbify.conversion.state import ConversionState
 from orbify.conversion.walk import GraphWalk
 from orbify.errors import InputShapeError, OptionError
+from orbify.graph.channel_order import shuffle_orbits
 from orbify.graph.plan import BUDGETS, HEADS, INITS, ConversionPlan
 from orbify.graph.tracing import trace
 from orbify.symmetry.groups import Group, approximate_note, parse_group
@@ -134,6 +135,10 @@ def _rewrite(gm: fx.GraphModule, group: Group, plan: ConversionPlan, match: bool
         plain_outputs = descendants(pool)
     else:
         plain_outputs = head_layers(gm)
+    shuffles = shuffle_orbits(gm, group.order)
+    if shuffles:
+        plan.notes.append(f"{shuffles} channel shuffle{'s' if shuffles > 1 else ''} rewritten to shuffle whole orbits "
+                          "(the channels keep their original order in the channel maps)")
     plan.match = _matching(plan, match and carry)
     state = ConversionState(gm, group, plan.budget, plan.init, carry, plan.match, plan)
     GraphWalk(state, LayerConverter(state, plain_outputs), plan.head).run()

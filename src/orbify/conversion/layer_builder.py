@@ -16,9 +16,9 @@ from orbify.conversion.state import ConversionState
 from orbify.errors import WidthError
 from orbify.graph.plan import orbits_for
 from orbify.graph.rules import CONVERT_UP_TO, ConversionContext, Step
-from orbify.graph.tracing import describe
+from orbify.graph.tracing import describe, shape
 from orbify.layers.tied import OrbitBatchNorm, conv_fibre, tie_conv, tie_linear
-from orbify.symmetry.layouts import Layout, Orbit, Plain
+from orbify.symmetry.layouts import Flat, Layout, Orbit, Permuted, Plain
 from orbify.transfer.channels import ChannelMap, rows
 from orbify.transfer.kinds import is_depthwise
 from orbify.transfer.loading import carried_weight, factory_kwargs
@@ -46,7 +46,9 @@ class TiedLayer:
     """A conv or linear being converted: its new tied module and what carrying weights into it needs.
 
     ``fed`` is kept once matching has prepared the weight (to reuse it), ``matched`` once matching
-    has found the tied weight for its chosen rows.
+    has found the tied weight for its chosen rows. ``dims``: a Linear over the last axis of a channels-last
+    value reads and writes values with their axes permuted by ``dims`` (``lin`` and ``lout`` are their
+    layouts with the axes in order).
     """
 
     old: nn.Module
@@ -57,6 +59,7 @@ class TiedLayer:
     notes: list[str] = field(default_factory=list)
     fed: FedWeight | None = None
     matched: MatchedWeight | None = None
+    dims: tuple[int, ...] | None = None
 
     @property
     def transposed(self) -> bool:
@@ -65,6 +68,10 @@ class TiedLayer:
     @property
     def depthwise(self) -> bool:
         return is_depthwise(self.old)
+
+    def permuted(self, layout: Layout) -> Layout:
+        """``layout`` with this layer's axes (:class:`Permuted` for a layer over a channels-last value)."""
+        return layout if self.dims is None else Permuted(layout, self.dims)
 
     def weight(self, in_map: ChannelMap, source: torch.Tensor | None) -> torch.Tensor:
         """The original weight, out-first, output rows picked by ``source`` (None: original order), inputs fed."""
@@ -96,11 +103,13 @@ class LayerBuilder:
         lin = state.layouts[node.all_input_nodes[0]]
         step = step or Step(node, [lin], self.ctx)
         if isinstance(old, nn.Linear):
+            dims = self._linear_axes(step, lin)
+            lin = lin.inner if dims is not None else lin
             lout = self._output_layout(node, old.out_features)
             new = self._new(nn.Linear, lin.size(state.group), lout.size(state.group), bias=old.bias is not None,
                             **factory_kwargs(old.weight))
             tie_linear(new, state.group, lin, lout, where=describe(node), project=not state.carry)
-            layer = TiedLayer(old, new, lin, lout)
+            layer = TiedLayer(old, new, lin, lout, dims=dims)
         else:
             layer = self._conv(node, step, old, lin)
         self.layers[node] = layer
@@ -109,6 +118,24 @@ class LayerBuilder:
     def done(self, node: fx.Node) -> None:
         """Forget ``node``'s layer once converted (it holds weights kept for matching)."""
         self.layers.pop(node)
+
+    def _linear_axes(self, step: Step, lin: Layout) -> tuple[int, ...] | None:
+        """The axes of a channels-last value a Linear reads over its last axis (None: (B, C) features).
+
+        Refuses a Linear over another axis than the channels, and calibration of one over channels last.
+        """
+        rank = len(shape(step.node.all_input_nodes[0]) or ())
+        if isinstance(lin, Permuted) and lin.channel_axis == rank - 1:
+            if self.state.init == "calibrated":
+                raise step.refuse("Calibration does not refit a Linear over channels last yet",
+                                  "convert with init='orbit-average' (--init orbit-average) and tune, or convert "
+                                  "only up to the node before it")
+            return lin.dims
+        if rank > 2 or isinstance(lin, Permuted) or not isinstance(lin, (Plain, Orbit, Flat)):
+            raise step.refuse("A Linear over an axis that does not hold the channels",
+                              "apply it to (B, C) features or over the last axis of a channels-last map, or "
+                              + CONVERT_UP_TO)
+        return None
 
     def _conv(self, node: fx.Node, step: Step, old: nn.Module, lin: Layout) -> TiedLayer:
         group = self.state.group

@@ -1,4 +1,5 @@
-"""The conversion as the op rules see it (:class:`orbify.graph.rules.ConversionContext`): replacing layers."""
+"""The conversion as the op rules see it (:class:`orbify.graph.rules.ConversionContext`): replacing layers, tying
+per-channel tensors."""
 
 from __future__ import annotations
 
@@ -14,10 +15,16 @@ from orbify.conversion.norms import affine_norm_for, batch_norm_for
 from orbify.conversion.recording import record_layer, record_norm
 from orbify.conversion.state import ConversionState
 from orbify.conversion.weight_loading import carry_layer_weights
+from orbify.graph.channels_last import ChannelParameter
 from orbify.graph.rules import Step
-from orbify.layers.tied import tie_affine
-from orbify.symmetry.layouts import Layout
+from orbify.layers.tied import tie_affine, tie_channel_tensor
+from orbify.symmetry.groups import Group
+from orbify.symmetry.layouts import Layout, Orbit, unpermuted
+from orbify.transfer.channels import rows
 from orbify.transfer.norms import load_norm_rows
+
+TENSOR_HOLDER = "channel_tensors"
+"""The child module that takes the top module's per-channel tensors when they are tied."""
 
 
 class LayerConverter:
@@ -31,10 +38,16 @@ class LayerConverter:
         self.builder = LayerBuilder(state, plain_outputs, self)
         self.chooser = ChannelChooser(state, self.builder)
         self.replacer = ModuleReplacer(state.gm)
+        self.tied_tensors: dict[str, Orbit] = {}   # per-channel tensors tied so far (target → layout)
+        self.tied_note = 0   # where the plan's notes list them
 
     @property
     def layouts(self) -> Mapping[fx.Node, Layout | None]:
         return self.state.layouts
+
+    @property
+    def group(self) -> Group:
+        return self.state.group
 
     def convert_layer(self, step: Step) -> Layout:
         state, node = self.state, step.node
@@ -48,7 +61,10 @@ class LayerConverter:
         self.builder.done(node)
         state.maps[node], state.identity_maps[node] = out_map, identity_map
         record_layer(state, node, layer, residual, identity_residual)
-        return layer.lout
+        if layer.dims is not None:   # over the last axis of a channels-last value: recorded with its axes
+            entry = state.plan.layers[-1]
+            entry.layout_in, entry.layout_out = layer.permuted(layer.lin), layer.permuted(layer.lout)
+        return layer.permuted(layer.lout)
 
     def convert_batch_norm(self, step: Step) -> Layout:
         old = self.state.module(step.node)
@@ -62,9 +78,63 @@ class LayerConverter:
         source = self._input_source(step)
         if self.state.carry and getattr(old, "weight", None) is not None:
             load_norm_rows(new, old, source)
-        tie_affine(new, self.state.group, step.layout)
+        tie_affine(new, self.state.group, unpermuted(step.layout))
         self._put(step, old, new)
         return step.layout
+
+    def tie_channel_parameter(self, step: Step, parameter: ChannelParameter) -> None:
+        """Tie a per-channel tensor (a layer scale) per orbit, its entries those of the channels it meets.
+
+        The entries are picked by the channel map of the value it multiplies (so the widths may change)
+        and averaged per orbit; a tensor used again must meet the same layout. The plan's notes list them.
+        """
+        state, target = self.state, parameter.attribute.target
+        if target in self.tied_tensors:
+            if self.tied_tensors[target] != parameter.layout:
+                raise step.refuse(f"The per-channel tensor '{target}' is used on values of different layouts "
+                                  f"({self.tied_tensors[target]} and {parameter.layout})",
+                                  "use one tensor per value it scales, or convert only up to the node before it")
+            return
+        owner, name = self._owner(parameter.attribute)
+        target = parameter.attribute.target   # changed when the tensor moved from the top module
+        old = getattr(owner, name).detach()
+        source = next(state.maps[arg] for arg in step.node.all_input_nodes if state.layouts.get(arg) is not None).source
+        if source.numel() != old.numel() and any(old.numel() in _integers(node.args) for node in parameter.shaping):
+            raise step.refuse(f"The per-channel tensor '{target}' is reshaped to its {old.numel()} channels by "
+                              f"number, but the converted value has {source.numel()}",
+                              "reshape it with -1 for the channel axis, or use the 'channels' budget")
+        value = rows(old.reshape(-1), source).reshape(tuple(source.numel() if size > 1 else 1 for size in old.shape))
+        tie_channel_tensor(owner, name, value, state.group, parameter.layout)
+        self.tied_tensors[target] = parameter.layout
+        note = f"per-channel tensors tied per orbit (orbit-averaged): {', '.join(self.tied_tensors)}"
+        if len(self.tied_tensors) == 1:
+            self.tied_note = len(state.plan.notes)
+            state.plan.notes.append(note)
+        state.plan.notes[self.tied_note] = note
+
+    def _owner(self, attribute: fx.Node) -> tuple[nn.Module, str]:
+        """The module holding a ``get_attr`` node's tensor, and the tensor's name there.
+
+        A tensor of the top module moves into its child :data:`TENSOR_HOLDER` first (every ``get_attr`` of it
+        follows): a GraphModule cannot be parametrized itself.
+        """
+        gm = self.state.gm
+        owner_name, _, name = attribute.target.rpartition(".")
+        if owner_name:
+            return gm.get_submodule(owner_name), name
+        if TENSOR_HOLDER not in gm._modules:
+            gm.add_module(TENSOR_HOLDER, nn.Module())
+        holder = gm.get_submodule(TENSOR_HOLDER)
+        if name in gm._parameters:
+            holder.register_parameter(name, gm._parameters.pop(name))
+        elif name in gm._buffers:
+            holder.register_buffer(name, gm._buffers.pop(name), persistent=name not in gm._non_persistent_buffers_set)
+        else:
+            setattr(holder, name, getattr(gm, name))
+            delattr(gm, name)
+        for node in gm.graph.find_nodes(op="get_attr", target=name):
+            node.target = f"{TENSOR_HOLDER}.{name}"
+        return holder, name
 
     def _input_source(self, step: Step) -> torch.Tensor:
         """The original channel each channel of the step's (first) input carries."""
@@ -74,3 +144,14 @@ class LayerConverter:
         """Replace a norm layer and record it."""
         self.replacer.replace(step.node, new)
         record_norm(self.state, step.node, old, new, step.layout)
+
+
+def _integers(args) -> set[int]:
+    """The integers among (nested) node arguments."""
+    found: set[int] = set()
+    for arg in args:
+        if isinstance(arg, (tuple, list)):
+            found |= _integers(arg)
+        elif isinstance(arg, int) and not isinstance(arg, bool):
+            found.add(arg)
+    return found

@@ -2,11 +2,14 @@
 
 from __future__ import annotations
 
+import operator
+
 from torch import fx
 
 from orbify.conversion.graph_edits import insert_pool
 from orbify.conversion.state import ConversionState
 from orbify.errors import OptionError
+from orbify.graph.channel_order import ORIGINAL_ORDER, Parts, part_bounds
 from orbify.graph.rules import CONVERT_UP_TO, ConversionContext, Step, no_tensor, rule_for
 from orbify.graph.tracing import shape
 from orbify.layers.tied import OrbitPool
@@ -36,7 +39,8 @@ class GraphWalk:
                 self._finish(node)
             else:
                 self._visit(node)
-            state.plan.values[node.name] = state.layouts.get(node)
+            value = state.layouts.get(node)
+            state.plan.values[node.name] = None if isinstance(value, Parts) else value   # a tuple, not a tensor
         state.gm.graph.lint()
         state.gm.recompile()
 
@@ -53,8 +57,20 @@ class GraphWalk:
         state.layouts[node] = layout
         if node not in state.maps:
             state.maps[node] = self._carried_map(node, layout, state.maps)
+            self._note_unfed(node)
         if node not in state.identity_maps:
             state.identity_maps[node] = self._carried_map(node, layout, state.identity_maps)
+
+    def _note_unfed(self, node: fx.Node) -> None:
+        """Say when taking a part of a value left some of its channels standing for no original channel."""
+        taken, whole = self.state.maps.get(node), self.state.maps.get(node.args[0]) if node.args else None
+        if node.target is operator.getitem and taken is not None and isinstance(whole, ChannelMap):
+            bounds = part_bounds(node, self.state.layouts)
+            lost = taken.unfed - (whole.source[bounds[0]:bounds[1]] < 0).sum().item() if bounds else 0
+            if lost > 0:
+                self.state.plan.notes.append(
+                    f"{lost} of the {taken.new} channels of '{node.name}' stand for original channels of the other "
+                    "part (a channel shuffle moved them across the split): weights read from them start at zero")
 
     def _carried_map(self, node: fx.Node, layout: Layout | None, maps: dict[fx.Node, ChannelMap]) -> ChannelMap | None:
         """The channel map of a node that does not choose channels: carried from its inputs'."""
@@ -64,8 +80,11 @@ class GraphWalk:
             return None
         pools = node.op == "call_module" and isinstance(state.module(node), OrbitPool)
         flattens = isinstance(layout, Flat) and not isinstance(state.layouts[node.all_input_nodes[0]], Flat)
+        part = part_bounds(node, state.layouts) if node.target is operator.getitem else None
+        reorder = ((state.gm.get_buffer(node.args[2].target), node.meta[ORIGINAL_ORDER])
+                   if ORIGINAL_ORDER in node.meta else None)
         return carried_map(node, sources, maps, pool_order=state.group.order if pools else None,
-                           positions=layout.height * layout.width if flattens else None)
+                           positions=layout.height * layout.width if flattens else None, part=part, reorder=reorder)
 
     def _finish(self, output: fx.Node) -> None:
         """Pool orbit outputs so they are invariant, and check each output suits the ``head`` option."""

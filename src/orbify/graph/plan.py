@@ -14,7 +14,7 @@ from dataclasses import asdict, dataclass, field
 from typing import Protocol
 
 from orbify.symmetry.groups import Group
-from orbify.symmetry.layouts import Flat, Layout, Orbit, Plain
+from orbify.symmetry.layouts import Flat, Layout, Orbit, Permuted, Plain, unpermuted
 
 BUDGETS = ("channels", "params", "fields")
 HEADS = ("invariant", "map")
@@ -44,6 +44,7 @@ class Rounding:
     @classmethod
     def of(cls, budget: str, layout_out: Layout, channels_before: int, channels_after: int) -> Rounding | None:
         """The rounding of a layer's output width, None when the budget kept it (or does not aim to)."""
+        layout_out = unpermuted(layout_out)
         if budget != "channels" or not isinstance(layout_out, Orbit) or channels_before == channels_after:
             return None
         return cls(channels_before, layout_out.orbits, channels_after)
@@ -159,7 +160,8 @@ def _layout_text(layout: Layout | None) -> str:
 
 
 def _layout_from_text(text: str) -> Layout | None:
-    """The layout :func:`layout_text` wrote: ``plain(3)``, ``orbit(16)``, ``flat(orbit(16)×7×7)`` or ``-``."""
+    """The layout :func:`layout_text` wrote: ``plain(3)``, ``orbit(16)``, ``flat(orbit(16)×7×7)``,
+    ``permuted(orbit(16), 0,2,3,1)`` or ``-``."""
     if text == _NO_LAYOUT:
         return None
     match = re.fullmatch(r"(plain|orbit)\((\d+)\)", text)
@@ -169,4 +171,7 @@ def _layout_from_text(text: str) -> Layout | None:
     match = re.fullmatch(r"flat\((.+)×(\d+)×(\d+)\)", text)
     if match:
         return Flat(_layout_from_text(match.group(1)), int(match.group(2)), int(match.group(3)))
+    match = re.fullmatch(r"permuted\((.+), ([\d,]+)\)", text)
+    if match:
+        return Permuted(_layout_from_text(match.group(1)), tuple(int(d) for d in match.group(2).split(",")))
     raise ValueError(f"not a layout: {text!r}")

@@ -23,7 +23,15 @@ import torch.nn.functional as F
 from torch import fx, nn
 
 from orbify.errors import UnsupportedOpError
+from orbify.graph.channel_order import select_channels, split_channels, take_part
+from orbify.graph.channels_last import (
+    CHANNELS_LAST_FUNCTIONS,
+    CHANNELS_LAST_METHODS,
+    ChannelParameter,
+    tie_constant_operands,
+)
 from orbify.graph.tracing import describe, shape
+from orbify.symmetry.groups import Group
 from orbify.symmetry.layouts import Flat, Layout, Orbit, Plain
 
 
@@ -57,6 +65,10 @@ class ConversionContext(Protocol):
     def layouts(self) -> Mapping[fx.Node, Layout | None]:
         """The layout of every value walked so far (None: not a tensor)."""
 
+    @property
+    def group(self) -> Group:
+        """The group converted to."""
+
     def convert_layer(self, step: Step) -> Layout:
         """A conv, transposed conv or linear layer."""
 
@@ -65,6 +77,9 @@ class ConversionContext(Protocol):
 
     def convert_affine_norm(self, step: Step) -> Layout:
         """A group norm or layer norm, its affine parameters tied along orbits."""
+
+    def tie_channel_parameter(self, step: Step, parameter: ChannelParameter) -> None:
+        """A per-channel model tensor used by ``step``'s elementwise op: tied per orbit, its values carried."""
 
 
 Rule = Callable[[Step], "Layout | None"]
@@ -85,12 +100,11 @@ def elementwise(step: Step) -> Layout | None:
     if not layouts:
         return None
     varying = [layout for arg, layout in tensors if layout is not None and not broadcasts_channel(arg)]
-    if not varying:
-        return layouts[0]
-    first = varying[0]
+    first = varying[0] if varying else layouts[0]
     if any(layout != first for layout in varying[1:]):
         raise step.refuse("An elementwise op combines tensors of different layouts",
                           "make both operands come from layers of the same width, or " + CONVERT_UP_TO)
+    tie_constant_operands(step, first)   # parameters and constants: per-channel ones tied per orbit
     return first
 
 
@@ -137,6 +151,8 @@ def flatten(step: Step) -> Layout | None:
 def reshape(step: Step) -> Layout | None:
     """view/reshape: allowed as a flatten, or when it leaves the channel axis alone."""
     in_shape, out_shape = shape(step.node.args[0]), shape(step.node)
+    if step.layout is None:   # a parameter shaped to broadcast
+        return None
     if in_shape is not None and out_shape is not None and in_shape[:2] == out_shape[:2]:
         return step.layout
     if out_shape is not None and len(out_shape) == 2:
@@ -160,12 +176,6 @@ def no_tensor(step: Step) -> None:
     return None
 
 
-def getitem(step: Step) -> Layout | None:
-    if shape(step.node) is None:
-        return None
-    raise step.refuse("Indexing a tensor", CONVERT_UP_TO)
-
-
 def tied_layer(step: Step) -> Layout:
     return step.ctx.convert_layer(step)
 
@@ -184,18 +194,23 @@ def orbit_pool(step: Step) -> Layout:
     return Plain(step.layout.orbits)
 
 
-def _add_torchvision_rules() -> None:
-    """Rules for torchvision's own ops, added once torchvision is in use (it is optional and slow to import)."""
-    if "torchvision" not in sys.modules or _torchvision_added:
-        return
-    from torchvision.ops import StochasticDepth, stochastic_depth
+def _add_library_rules() -> None:
+    """Rules for torchvision's and timm's own ops, added once the library is in use (both are optional and slow to
+    import)."""
+    if "torchvision" in sys.modules and "torchvision" not in _libraries_added:
+        from torchvision.ops import StochasticDepth, stochastic_depth
 
-    MODULE_RULES[StochasticDepth] = passthrough
-    FUNCTION_RULES[stochastic_depth] = passthrough
-    _torchvision_added.append(True)
+        MODULE_RULES[StochasticDepth] = passthrough
+        FUNCTION_RULES[stochastic_depth] = passthrough
+        _libraries_added.add("torchvision")
+    if "timm" in sys.modules and "timm" not in _libraries_added:
+        from timm.layers import DropPath
+
+        MODULE_RULES[DropPath] = passthrough
+        _libraries_added.add("timm")
 
 
-_torchvision_added: list[bool] = []
+_libraries_added: set[str] = set()
 
 
 _POINTWISE_MODULES = (nn.ReLU, nn.ReLU6, nn.SiLU, nn.GELU, nn.Hardswish, nn.Hardsigmoid, nn.Sigmoid, nn.Tanh,
@@ -224,7 +239,10 @@ FUNCTION_RULES: dict[object, Rule] = {
     torch.cat: concatenate,
     torch.flatten: flatten,
     torch.mean: spatial_mean,
-    operator.getitem: getitem,
+    operator.getitem: take_part,
+    torch.split: split_channels,
+    torch.chunk: split_channels,
+    torch.index_select: select_channels,
     getattr: no_tensor,
 }
 
@@ -232,6 +250,8 @@ METHOD_RULES: dict[str, Rule] = {
     **{name: passthrough for name in ("relu", "relu_", "sigmoid", "sigmoid_", "tanh", "clone", "contiguous")},
     **{name: elementwise for name in ("add", "add_", "mul", "mul_", "sub", "div")},
     "flatten": flatten,
+    "split": split_channels,
+    "chunk": split_channels,
     "view": reshape,
     "reshape": reshape,
     "mean": spatial_mean,
@@ -243,7 +263,7 @@ METHOD_RULES: dict[str, Rule] = {
 
 def rule_for(node: fx.Node, module: nn.Module | None) -> Rule | None:
     """The rule of a node: by module class (most derived first), function or method name."""
-    _add_torchvision_rules()
+    _add_library_rules()
     if node.op == "call_module":
         for cls in type(module).__mro__:
             if cls in MODULE_RULES:
@@ -263,3 +283,5 @@ def _register_orbify_modules() -> None:
 
 
 _register_orbify_modules()
+FUNCTION_RULES.update(CHANNELS_LAST_FUNCTIONS)
+METHOD_RULES.update(CHANNELS_LAST_METHODS)

@@ -25,7 +25,16 @@ class _Tracer(fx.Tracer):
         self.record_stack_traces = True
 
     def is_leaf_module(self, m: nn.Module, qualname: str) -> bool:
-        return isinstance(m, self.leaf_types) or super().is_leaf_module(m, qualname)
+        return isinstance(m, self.leaf_types) or _decides_by_mode(m) or super().is_leaf_module(m, qualname)
+
+
+_MODE_DEPENDENT = {("torchvision.ops.stochastic_depth", "StochasticDepth"), ("timm.layers.drop", "DropPath")}
+
+
+def _decides_by_mode(module: nn.Module) -> bool:
+    """Stochastic depth decides in Python whether it is training: traced through, the mode at tracing time would be
+    fixed in the graph, so it stays a module (its rule passes the layout through)."""
+    return (type(module).__module__, type(module).__name__) in _MODE_DEPENDENT
 
 
 def trace(model: nn.Module, example_input: torch.Tensor | None = None,

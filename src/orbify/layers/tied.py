@@ -126,6 +126,43 @@ def tie_affine(norm: nn.Module, group: Group, layout: Layout) -> nn.Module:
     return norm
 
 
+class ChannelTensorTying(nn.Module):
+    """Parametrization of a per-channel tensor (a layer scale): size 1 on every axis but one, which holds
+    ``orbits``·|G| channels; one value per orbit (:class:`~orbify.symmetry.tying.TiedPerOrbit` on the flattened
+    tensor), the tensor's shape kept."""
+
+    def __init__(self, group: Group, orbits: int, shape: tuple[int, ...]):
+        super().__init__()
+        self.per_orbit = TiedPerOrbit(group, orbits)
+        self.shape = shape
+        self.base_shape = tuple(orbits if size > 1 else 1 for size in shape)
+
+    def forward(self, base: torch.Tensor) -> torch.Tensor:
+        return self.per_orbit(base.reshape(-1)).reshape(self.shape)
+
+    def right_inverse(self, value: torch.Tensor) -> torch.Tensor:
+        return self.per_orbit.right_inverse(value.reshape(-1)).reshape(self.base_shape)
+
+
+@torch.no_grad()
+def tie_channel_tensor(module: nn.Module, name: str, value: torch.Tensor, group: Group, layout: Orbit) -> None:
+    """Make tensor ``name`` of ``module`` the orbit average of ``value`` (one axis of ``layout``'s channels).
+
+    A parameter stays tied per orbit (parametrized, so training keeps it tied); a buffer or a plain tensor
+    attribute (a constant) is stored averaged. The tensor's requires_grad and persistence are kept.
+    """
+    tying = ChannelTensorTying(group, layout.orbits, tuple(value.shape))
+    old = getattr(module, name)
+    if isinstance(old, nn.Parameter):
+        setattr(module, name, nn.Parameter(value.clone(), requires_grad=old.requires_grad))
+        _register(module, name, tying)
+    elif name in module._buffers:
+        module.register_buffer(name, tying(tying.right_inverse(value)),
+                               persistent=name not in module._non_persistent_buffers_set)
+    else:
+        setattr(module, name, tying(tying.right_inverse(value)))
+
+
 class OrbitBatchNorm(nn.modules.batchnorm._BatchNorm):
     """Batch norm whose statistics and affine parameters are shared by the |G| slots of each orbit.
 
@@ -252,4 +289,5 @@ def _bake_batch_norm(bn: OrbitBatchNorm) -> nn.modules.batchnorm._BatchNorm:
     return plain.train(bn.training)
 
 
-__all__ = ["OrbitBatchNorm", "OrbitPool", "bake", "conv_fibre", "orbit_pool", "tie_affine", "tie_conv", "tie_linear"]
+__all__ = ["ChannelTensorTying", "OrbitBatchNorm", "OrbitPool", "bake", "conv_fibre", "orbit_pool", "tie_affine",
+           "tie_channel_tensor", "tie_conv", "tie_linear"]

@@ -8,6 +8,8 @@ well for spatial tensors (``Group.act_grid``); :func:`act` applies both.
 * :class:`Orbit` — ``orbits`` blocks of |G| contiguous slots (channel = o·|G| + s); g sends slot s
   to slot g·s.
 * :class:`Flat` — the flattened (C, H, W) map of an inner layout; g permutes the entries.
+* :class:`Permuted` — a (B, C, H, W) tensor of an inner layout with its axes permuted (channels last:
+  (B, H, W, C)); g acts as on the inner layout, on the axes where they now are.
 """
 
 from __future__ import annotations
@@ -97,8 +99,45 @@ class Flat(Layout):
         return f"flat({self.inner}×{self.height}×{self.width})"
 
 
+@dataclass(frozen=True)
+class Permuted(Layout):
+    """A tensor ``x.permute(dims)`` of a tensor ``x`` of layout ``inner`` (channels on axis 1, pixels last).
+
+    ``dims`` = (0, 2, 3, 1) is a channels-last map (B, H, W, C). Channels move as ``inner``'s, so
+    ``size`` and ``permutation`` are ``inner``'s; :func:`act` moves the axes back, acts and moves them again.
+    """
+
+    inner: Layout
+    dims: tuple[int, ...]
+
+    def size(self, group: Group) -> int:
+        return self.inner.size(group)
+
+    def permutation(self, group: Group) -> torch.Tensor:
+        return self.inner.permutation(group)
+
+    @property
+    def channel_axis(self) -> int:
+        """The axis that holds the channels."""
+        return self.dims.index(1)
+
+    def __str__(self) -> str:
+        return f"permuted({self.inner}, {','.join(map(str, self.dims))})"
+
+
+def unpermuted(layout: Layout | None) -> Layout | None:
+    """The layout of the value with its axes in the usual order: ``inner`` of a :class:`Permuted`, else ``layout``."""
+    return layout.inner if isinstance(layout, Permuted) else layout
+
+
 def act(group: Group, layout: Layout, g: int, x: torch.Tensor, channel_dim: int = 1) -> torch.Tensor:
-    """Apply element g to a tensor of the given layout (channels on ``channel_dim``, pixels last)."""
+    """Apply element g to a tensor of the given layout (channels on ``channel_dim``, pixels last).
+
+    A :class:`Permuted` tensor is acted on with its axes put back in order (``channel_dim`` then applies there).
+    """
+    if isinstance(layout, Permuted):
+        back = sorted(range(len(layout.dims)), key=layout.dims.__getitem__)
+        return act(group, layout.inner, g, x.permute(back), channel_dim).permute(layout.dims)
     x = x.index_select(channel_dim, layout.permutation(group)[g].to(x.device))
     if x.dim() > channel_dim + 2 and not isinstance(layout, Flat):
         x = group.act_grid(g, x)

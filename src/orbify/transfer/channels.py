@@ -62,6 +62,34 @@ class ChannelMap:
         inflow = _sparse(rows, cols // order, self.inflow.values(), self.original, self.new // order)
         return ChannelMap(self.source.reshape(-1, order)[:, 0].clone(), inflow)
 
+    def reordered(self, converted: torch.Tensor, original: torch.Tensor) -> "ChannelMap":
+        """The map after a channel reorder: new position p takes new channel ``converted[p]``, while the original
+        model's position r took original channel ``original[r]``."""
+        to_original_position = torch.argsort(original)
+        to_new_position = torch.argsort(converted)
+        picked = self.source[converted]
+        rows, cols = self.inflow.indices()
+        inflow = _sparse(to_original_position[rows], to_new_position[cols], self.inflow.values(), self.original,
+                         self.new)
+        return ChannelMap(torch.where(picked >= 0, to_original_position[picked.clamp_min(0)], picked), inflow)
+
+    def part(self, start: int, stop: int) -> "ChannelMap":
+        """The map of channels ``start:stop`` taken out of a value holding the original's channels in the original's
+        widths (a split or slice). A channel standing for an original channel outside the part (a channel shuffle
+        upstream can move it there) stands for none in the part: it feeds no weight on (source −1)."""
+        source = self.source[start:stop]
+        inside = (source >= start) & (source < stop)
+        rows, cols = self.inflow.indices()
+        kept = (cols >= start) & (cols < stop) & (rows >= start) & (rows < stop)
+        inflow = _sparse(rows[kept] - start, cols[kept] - start, self.inflow.values()[kept], stop - start,
+                         stop - start)
+        return ChannelMap(torch.where(inside, source - start, torch.full_like(source, -1)), inflow)
+
+    @property
+    def unfed(self) -> int:
+        """How many channels stand for no original channel."""
+        return int((self.source < 0).sum())
+
     def flattened(self, positions: int) -> "ChannelMap":
         return ChannelMap(self.source, self.inflow, self.spatial * positions)
 
@@ -85,14 +113,17 @@ class ChannelMap:
 
 
 def carried_map(node: fx.Node, sources: list[ChannelMap | None], maps: Mapping[fx.Node, ChannelMap | None], *,
-                pool_order: int | None = None, positions: int | None = None) -> ChannelMap | None:
+                pool_order: int | None = None, positions: int | None = None, part: tuple[int, int] | None = None,
+                reorder: tuple[torch.Tensor, torch.Tensor] | None = None) -> ChannelMap | None:
     """The channel map of a value that no conv or linear layer writes, from the maps of its inputs.
 
     ``sources`` are the maps of the node's inputs that carry channels, in argument order, and
     ``maps`` holds the map of every earlier node. A ``torch.cat`` whose parts all have maps joins
     them (:meth:`ChannelMap.concat`); an orbit pool of ``pool_order`` slots pools the first source;
-    a node that flattens a spatial map of ``positions`` positions per channel spreads it; any other
-    op keeps its first source's map. None when no input carries channels.
+    a node that flattens a spatial map of ``positions`` positions per channel spreads it; a node
+    taking channels ``part`` (start, stop) out of a split or slice takes that part; a channel
+    ``reorder`` (converted order, original order) reorders; any other op keeps its first source's
+    map. None when no input carries channels.
     """
     if not sources:
         return None
@@ -102,6 +133,10 @@ def carried_map(node: fx.Node, sources: list[ChannelMap | None], maps: Mapping[f
         return sources[0].pooled(pool_order)
     if positions is not None:
         return sources[0].flattened(positions)
+    if part is not None:
+        return sources[0].part(*part)
+    if reorder is not None:
+        return sources[0].reordered(*reorder)
     return sources[0]
 
 

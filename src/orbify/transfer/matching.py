@@ -12,7 +12,8 @@ Two pieces, used by :mod:`orbify.conversion.converter` and :mod:`orbify.calibrat
 * **Channel classes** (:class:`ChannelClasses`). Values joined by an elementwise op (a residual
   add, a squeeze-excitation product) must hold the same original channel in every position, so
   the layers that write them share one assignment; grouped convs and group norms that read a
-  value keep its channels inside their groups.
+  value keep its channels inside their groups; a value that is split, sliced or shuffled along
+  its channels keeps the identity assignment, so that its parts hold the original's parts.
 
 Loading the weights is :mod:`orbify.transfer.loading`; which layers take part, :mod:`orbify.transfer.kinds`.
 """
@@ -27,6 +28,7 @@ import torch
 from scipy.optimize import linear_sum_assignment
 from torch import fx, nn
 
+from orbify.graph.channel_order import cuts_channels
 from orbify.graph.rules import broadcasts_channel, elementwise, rule_for
 from orbify.graph.tracing import shape
 from orbify.transfer.kinds import chooses_channels
@@ -168,6 +170,7 @@ class ChannelClasses:
         self._parts: dict[int, list[int]] = {}
         self._of: dict[fx.Node, int] = {}
         self._order: dict[fx.Node, int] = {}
+        self._constant: set[fx.Node] = set()   # values computed from the model's tensors alone (a reshaped scale)
         for node in gm.graph.nodes:
             self._visit(gm, node)
 
@@ -229,6 +232,8 @@ class ChannelClasses:
         self._order[node] = len(self._order)
         module = gm.get_submodule(node.target) if node.op == "call_module" else None
         inputs = [self._of[a] for a in node.all_input_nodes if a in self._of]
+        if node.op == "get_attr" or (node.all_input_nodes and all(a in self._constant for a in node.all_input_nodes)):
+            self._constant.add(node)
         if node.op in ("placeholder", "get_attr"):
             self._of[node] = self._new(frozen=True)
         elif node.op == "output":
@@ -245,7 +250,7 @@ class ChannelClasses:
             self._parts[cid] = [self._of[a] for a in node.args[0] if a in self._of]
         elif rule_for(node, module) is elementwise:
             full = [self._of[a] for a in node.args if isinstance(a, fx.Node) and a in self._of
-                    and shape(a) is not None and not broadcasts_channel(a)]
+                    and a not in self._constant and shape(a) is not None and not broadcasts_channel(a)]
             cid = full[0] if full else (inputs[0] if inputs else self._new(frozen=True))
             for other in full[1:]:
                 cid = self._union(cid, other)
@@ -254,6 +259,9 @@ class ChannelClasses:
             self._of[node] = inputs[0] if inputs else self._new(frozen=True)
             if isinstance(module, nn.GroupNorm) and inputs:
                 self._constrain(inputs[0], module.num_groups)
+            if cuts_channels(node) and inputs:
+                self._freeze(inputs[0])
+                self._of[node] = self._new(frozen=True)
 
 
 def residual_totals(plan) -> dict[str, float | None]:

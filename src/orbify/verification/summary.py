@@ -189,13 +189,17 @@ def _flops_by_path(counts: dict[str, dict]) -> dict[str, int]:
 
 def _row(path: str, module: nn.Module, name: str, shapes: tuple, macs: int, layer) -> LayerRow:
     input_shape, output_shape = shapes
-    axis = -1 if isinstance(module, (nn.Linear, nn.LayerNorm)) else 1
+    axis = -1 if isinstance(module, nn.Linear) else 1
     kernel = getattr(module, "kernel_size", None)
     stride = getattr(module, "stride", None)
+    # a layer norm's channels are its normalized axis, wherever the input holds it (channels last, or a subclass
+    # that permutes them there itself)
+    channels = (f"{module.normalized_shape[-1]}→{module.normalized_shape[-1]}" if isinstance(module, nn.LayerNorm)
+                else f"{input_shape[axis]}→{output_shape[axis]}")
     return LayerRow(
         name=name, target=path, op=_op_name(module),
         layout_in=str(layer.layout_in) if layer else "-", layout_out=str(layer.layout_out) if layer else "-",
-        channels=f"{input_shape[axis]}→{output_shape[axis]}",
+        channels=channels,
         kernel="×".join(map(str, kernel)) if kernel else "-", stride="×".join(map(str, stride)) if stride else "-",
         params=count_params(module), macs=macs, output_shape="×".join(map(str, output_shape[1:])),
     )
