@@ -27,6 +27,7 @@ from orbify.cli.options import (
     parse_floats,
 )
 from orbify.cli.outputs import refuse_output
+from orbify.cli.sizes import REPAIR_STRIDES_HELP
 from orbify.common.options import check_choice
 from orbify.conversion.converter import convert
 from orbify.data import read_images
@@ -35,6 +36,8 @@ from orbify.files.saving import is_converted_file, require_reference, save
 from orbify.files.sources import EXAMPLE_SIZE, IMAGENET_SIZE, usual_input_size
 from orbify.graph.plan import BUDGETS, HEADS, INITS, ConversionPlan
 from orbify.graph.sizes import choose_input_size, input_channels
+from orbify.graph.stride_conflicts import no_exact_size_error
+from orbify.graph.stride_repair import REPAIR_NOTE, repaired_model
 from orbify.recipes import find_recipe_for, load_recipe, merge_options
 from orbify.recipes.schema import CALIBRATION_IMAGES, CONVERT_DEFAULTS
 from orbify.symmetry.groups import approximate_note, parse_group
@@ -70,6 +73,8 @@ def convert_command(
                                              f"{EXAMPLE_SIZE} for 'example')."),
     recipe_name: Optional[str] = typer.Option(None, "--recipe", help="A shipped recipe's name (orbify recipes "
                                               "lists them) or a recipe .toml file; options given here override it."),
+    repair_strides: Optional[bool] = typer.Option(None, "--repair-strides/--no-repair-strides",
+                                                  help=REPAIR_STRIDES_HELP + " Default: the recipe's, else off."),
     channels: Optional[int] = ChannelsOption,
     stop_at: Optional[str] = typer.Option(None, "--stop-at", help="Convert only up to this graph node or module "
                                           "path: its orbits are pooled there, and later layers keep plain "
@@ -106,6 +111,8 @@ def convert_command(
       orbify convert mypackage.models:build_net --weights net.pt --budget params --input-size 129 -o net-d4.orb
 
       orbify convert torchvision:resnet18 --weights resnet18.pt --recipe resnet --calibration photos/ -o resnet18-d4.orb
+
+      orbify convert timm:resnet18d --weights resnet18d.safetensors --group c4 --repair-strides -o resnet18d-c4.orb
     """
     refuse_output(out, force, inputs=[Path(source), weights, calibration])
     if calibration is not None and init is None:
@@ -114,7 +121,8 @@ def convert_command(
         raise OptionError(f"{source!r} is already a converted model",
                           fix="check, tune or export it (orbify check/tune/export), or convert its plain original")
     recipe = load_recipe(recipe_name) if recipe_name is not None else None
-    given = {"group": group, "budget": budget, "head": head, "init": init, "match": match, "stop_at": stop_at}
+    given = {"group": group, "budget": budget, "head": head, "init": init, "match": match, "stop_at": stop_at,
+             "repair_strides": repair_strides}
     if recipe is not None:
         options = merge_options(recipe, given)
         recipe_size = options.pop("input_size")
@@ -126,14 +134,21 @@ def convert_command(
     require_reference(loaded.reference, source)
     original = loaded.module
     channels = channels or input_channels(original)
+    usual = usual_input_size(source)
+    sized = original      # the model whose sizes count: the original, or the original with its repairs
+    if options["repair_strides"]:
+        near = input_size or (recipe_size if recipe is not None else usual[0])
+        sized, _ = repaired_model(original, channels, near)
     if recipe is not None:
         if input_size is None:
             recipe.check_input_size(original, channels=channels)
-        choice = choose_input_size(original, usual_input_size(source), requested=input_size,
-                                   recipe_size=recipe_size, recipe_name=recipe.name, channels=channels)
+        choice = choose_input_size(sized, usual, requested=input_size, recipe_size=recipe_size,
+                                   recipe_name=recipe.name, channels=channels)
     else:
         suggest_recipe(loaded.reference or source)
-        choice = choose_input_size(original, usual_input_size(source), requested=input_size, channels=channels)
+        choice = choose_input_size(sized, usual, requested=input_size, channels=channels)
+    if choice.conflicts and input_size is None:
+        raise no_exact_size_error(choice.conflicts)
     console.print(f"input size {choice.size}: {choice.reason}", highlight=False)
     example = torch.zeros(1, channels, choice.size, choice.size)
     images = None
@@ -147,6 +162,9 @@ def convert_command(
     path = save(converted, plan, out, reference=loaded.reference, recipe=recipe.name if recipe else None,
                 check=report.to_dict(), force=force)
     console.print(conversion_table(report, plan))
+    for note in plan.notes:
+        if note.startswith(REPAIR_NOTE):
+            console.print(f"note: {note}", highlight=False)
     if not parse_group(plan.group).exact:
         console.print(f"note: {approximate_note(parse_group(plan.group))}", highlight=False)
     console.print(f"wrote {path} ({path.stat().st_size:,} bytes). Next: orbify tune {path} --data IMAGES -o TUNED.orb",

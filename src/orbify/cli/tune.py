@@ -242,10 +242,9 @@ def read_inputs(model: str, original: str | None, weights: Path | None, trust: T
     size = train.preparation.size
     checker = SizeChecker(teacher, channels)
     if not quiet and not checker.is_safe(size):
-        nearby = ", ".join(map(str, checker.safe_sizes(size, 3)))
         console.print(f"[yellow]warning:[/] the images' size {size} is not safe for this model "
                       f"({checker.violations(size)[0]}), so the converted model is not exactly invariant at it; "
-                      f"safe sizes nearby: {nearby or 'none found'} (--input-size)", highlight=False)
+                      f"safe sizes nearby: {checker.nearby(size)} (--input-size)", highlight=False)
     group, budget, head, init = conversion
     calibration = None
     if init == "calibrated":

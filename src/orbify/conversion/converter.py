@@ -24,6 +24,7 @@ from orbify.conversion.walk import GraphWalk
 from orbify.errors import InputShapeError, OptionError
 from orbify.graph.channel_order import shuffle_orbits
 from orbify.graph.plan import BUDGETS, HEADS, INITS, ConversionPlan
+from orbify.graph.stride_repair import repair_for_conversion
 from orbify.graph.tracing import trace
 from orbify.symmetry.groups import Group, approximate_note, parse_group
 from orbify.transfer.recalibrate import recalibrate_batch_norm
@@ -39,7 +40,7 @@ def convert(model: nn.Module, group: str | Group = "d4", budget: str = "channels
             example_input: torch.Tensor | None = None, *, init: str = "orbit-average", match: bool = MATCH_DEFAULT,
             carry_weights: bool = True, calibration: torch.Tensor | Iterable[torch.Tensor] | None = None,
             stop_at: str | None = None, leaf_types: tuple[type, ...] = (),
-            progress: bool = False) -> tuple[fx.GraphModule, ConversionPlan]:
+            progress: bool = False, repair_strides: bool = False) -> tuple[fx.GraphModule, ConversionPlan]:
     """Convert a plain model into its tied counterpart under ``group``.
 
     Args:
@@ -69,6 +70,9 @@ def convert(model: nn.Module, group: str | Group = "d4", budget: str = "channels
             everything after it stays plain.
         leaf_types: module classes to keep as single graph nodes when tracing.
         progress: show a progress bar per layer while calibrating (rich, on stderr).
+        repair_strides: when no input size is exact because ops need sides of opposite parity, replace
+            one op of each conflict by its counterpart exact on the other parity
+            (:mod:`orbify.graph.stride_repair`); the plan notes each replacement and the drift it causes.
 
     Returns:
         The converted GraphModule (in the mode of ``model``) and the conversion plan.
@@ -93,6 +97,9 @@ def convert(model: nn.Module, group: str | Group = "d4", budget: str = "channels
     _check_options(budget, head, init, carry_weights, calibration, example_input)
     gm = trace(model, example_input, leaf_types)
     plan = ConversionPlan(group.name, budget, head, init, tuple(example_input.shape), stop_at)
+    if repair_strides:
+        repair_for_conversion(gm, plan, example_input)
+        plan.repair_strides = True
     _rewrite(gm, group, plan, match, carry_weights)
     if not group.exact:
         plan.notes.append(approximate_note(group))

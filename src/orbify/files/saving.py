@@ -138,7 +138,7 @@ def _description(converted: nn.Module, plan: ConversionPlan, reference: str, rec
         "source": reference,
         "conversion": {
             "group": plan.group, "budget": plan.budget, "head": plan.head, "init": plan.init,
-            "stop_at": plan.stop_at, "input_shape": list(plan.input_shape),
+            "stop_at": plan.stop_at, "input_shape": list(plan.input_shape), "repair_strides": plan.repair_strides,
             "leaf_types": [f"{cls.__module__}:{cls.__qualname__}" for cls in leaf_types],
             "dtype": str(_float_dtype(converted)).removeprefix("torch."),
         },
@@ -269,6 +269,7 @@ def _rebuild(source: Path, metadata: dict, consent: Consent) -> fx.GraphModule:
         example = torch.zeros(tuple(options["input_shape"]))
         module, _ = convert(plain, options["group"], options["budget"], options["head"], example,
                             init=options["init"], stop_at=options.get("stop_at"), leaf_types=leaf_types,
+                            repair_strides=options.get("repair_strides", False),
                             carry_weights=False)
     except OrbifyError as error:
         raise CheckpointError(

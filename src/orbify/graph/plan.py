@@ -115,6 +115,7 @@ class ConversionPlan:
     input_shape: tuple[int, ...]
     stop_at: str | None = None
     match: bool = False
+    repair_strides: bool = False   # ops with no exact size replaced before converting (orbify.graph.stride_repair)
     layers: list[LayerPlan] = field(default_factory=list)
     values: dict[str, Layout | None] = field(default_factory=dict)   # node name → layout (None: not a tensor)
     notes: list[str] = field(default_factory=list)
@@ -134,7 +135,8 @@ class ConversionPlan:
     def to_dict(self) -> dict:
         return dict(
             group=self.group, budget=self.budget, head=self.head, init=self.init, input_shape=self.input_shape,
-            stop_at=self.stop_at, match=self.match, layers=[layer.to_dict() for layer in self.layers],
+            stop_at=self.stop_at, match=self.match, repair_strides=self.repair_strides,
+            layers=[layer.to_dict() for layer in self.layers],
             values={name: _layout_text(layout) for name, layout in self.values.items()}, notes=list(self.notes),
             calibration=None if self.calibration is None else self.calibration.to_dict())
 

@@ -8,7 +8,9 @@ A transposed conv is symmetric when it has no output padding. A resampling (``F.
 (either ``align_corners``) always is, nearest only when it enlarges by a whole factor, a ``scale_factor`` only
 when the output side is exactly the input side times the factor. Shapes are propagated on the
 ``meta`` device, so checking a size costs no arithmetic but for resamplings, each of which is
-probed on one random channel of its input size (:func:`resampling_break`).
+probed on one random channel of its input size (:func:`resampling_break`). When no size is exact at all,
+:meth:`SizeChecker.conflicts` names the ops that need sides no size gives them together
+(:mod:`orbify.graph.stride_conflicts`).
 """
 
 from __future__ import annotations
@@ -22,6 +24,7 @@ import torch.nn.functional as F
 from torch import fx, nn
 
 from orbify.errors import InputShapeError
+from orbify.graph.stride_conflicts import SizeProbe, StrideConflict, find_conflicts, no_exact_size_error
 from orbify.graph.tracing import describe, input_error, trace
 
 
@@ -36,14 +39,30 @@ class StrideViolation:
     stride: tuple[int, int]
     padding: tuple[int, int]
     dilation: tuple[int, int] = (1, 1)
+    output_padding: tuple[int, int] = (0, 0)      # a transposed conv's, which no input size makes exact
 
     def __str__(self) -> str:
         shape = (f"{self.where}: input {self.size[0]}×{self.size[1]}, kernel {self.kernel}, stride {self.stride}, "
                  f"padding {self.padding}")
+        if any(self.output_padding):
+            return f"{shape}, output padding {self.output_padding} — its output grid is not symmetric"
         if self.dilation == (1, 1):
             return f"{shape} — (H + 2·padding − kernel) is not divisible by the stride"
         return (f"{shape}, dilation {self.dilation} — (H + 2·padding − dilation·(kernel − 1) − 1) is not divisible "
                 "by the stride")
+
+    @property
+    def needs(self) -> str:
+        """The input sides this op is exact on, in words: ``h ≡ d·(k − 1) + 1 − 2p (mod s)`` per axis."""
+        if any(self.output_padding):
+            return "no output padding (a transposed conv with output padding is exact at no size)"
+        sides = {(s, (d * (k - 1) + 1 - 2 * p) % s)
+                 for k, s, p, d in zip(self.kernel, self.stride, self.padding, self.dilation) if s > 1}
+        words = " and ".join("an odd" if (s, r) == (2, 1) else "an even" if (s, r) == (2, 0) else f"a ≡ {r} (mod {s})"
+                             for s, r in sorted(sides))
+        dilation = f", dilation {self.dilation[0]}" if self.dilation != (1, 1) else ""
+        return (f"{words} input side (kernel {self.kernel[0]}×{self.kernel[1]}, stride {self.stride[0]}, "
+                f"padding {self.padding[0]}{dilation})")
 
 
 @dataclass(frozen=True)
@@ -61,6 +80,10 @@ class ResamplingViolation:
                 f"not commute with {self.broken} — its sampling grid is not symmetric (nearest is exact only when it "
                 "enlarges by a whole factor, a scale_factor only where it gives whole sides; bilinear to a given size "
                 "always is)")
+
+    @property
+    def needs(self) -> str:
+        return f"a symmetric sampling grid (at {self.size[0]}×{self.size[1]} it breaks {self.broken})"
 
 
 Violation = Union[StrideViolation, ResamplingViolation]
@@ -134,40 +157,50 @@ class _FirstViolation(Exception):
 
 
 class _Checker(fx.Interpreter):
-    def __init__(self, gm: fx.GraphModule, first_only: bool = False):
+    """Runs the graph on the meta device, collecting the ops that break; ``sides`` records each strided or
+    resampling node's input height and stride, ``current`` the node being run (where a failure happened)."""
+
+    def __init__(self, gm: fx.GraphModule, first_only: bool = False, resampling: bool = True):
         super().__init__(gm)
         self.violations: list[Violation] = []
         self.first_only = first_only
+        self.resampling = resampling
         self.extra_traceback = not first_only
+        self.sides: dict[str, tuple[int, int]] = {}
+        self.current: fx.Node | None = None
 
     def run_node(self, node: fx.Node):
+        self.current = node
         module = self.module.get_submodule(node.target) if node.op == "call_module" else None
         if isinstance(module, _SHAPE_KEEPING):
             return self.env[node.all_input_nodes[0]]   # shapes are all that matter here
+        inputs = node.all_input_nodes
+        x = self.env.get(inputs[0]) if inputs else None
+        size = tuple(x.shape[-2:]) if isinstance(x, torch.Tensor) and x.dim() >= 3 else None
         geometry = _geometry(node, module)
-        if geometry is not None:
-            x = self.env[node.all_input_nodes[0]] if node.all_input_nodes[0] in self.env else None
-            if x is not None:
-                self._check(node, tuple(x.shape[-2:]), *geometry)
+        if geometry is not None and size is not None:
+            self._check(node, size, *geometry)
         if isinstance(module, nn.ConvTranspose2d) and any(_pair(module.output_padding)):
-            x = self.env[node.all_input_nodes[0]]
-            self._add(StrideViolation(node.name, describe(node), tuple(x.shape[-2:]), _pair(module.kernel_size),
-                                      _pair(module.stride), _pair(module.padding)))
+            self._add(StrideViolation(node.name, describe(node), size, _pair(module.kernel_size),
+                                      _pair(module.stride), _pair(module.padding),
+                                      output_padding=_pair(module.output_padding)))
         output = super().run_node(node)
-        self._check_resampling(node, module, output)
+        if _is_resampling(node, module) and size is not None:
+            self.sides[node.name] = (size[0], 2)
+            if self.resampling:
+                self._check_resampling(node, module, output)
         return output
 
     def _check(self, node, size, kernel, stride, padding, dilation) -> None:
         if all(s == 1 for s in stride):
             return
+        self.sides[node.name] = (size[0], stride[0])
         for h, k, s, p, d in zip(size, kernel, stride, padding, dilation):
             if (h + 2 * p - d * (k - 1) - 1) % s:
                 self._add(StrideViolation(node.name, describe(node), size, kernel, stride, padding, dilation))
                 return
 
     def _check_resampling(self, node: fx.Node, module: nn.Module | None, output) -> None:
-        if not _is_resampling(node, module):
-            return
         args, kwargs = self.fetch_args_kwargs_from_env(node)
         resample = _resampler(module, args, kwargs)
         if resample is None:
@@ -192,6 +225,7 @@ class SizeChecker:
         self.channels = channels
         floats = (p.dtype for p in self.gm.parameters() if p.is_floating_point())
         self.dtype = next(floats, torch.float32)
+        self._conflicts: dict[int, list[StrideConflict]] = {}
 
     def violations(self, size: int | tuple[int, int], first_only: bool = False) -> list[Violation]:
         """Strided ops and resamplings that break equivariance at this input size (empty when the size is safe)."""
@@ -206,6 +240,38 @@ class SizeChecker:
         except Exception as error:
             raise input_error(self.gm, shape, error) from error
         return checker.violations
+
+    def probe(self, size: int, resampling: bool = True) -> SizeProbe:
+        """What the square input side ``size`` does: the ops that break, where the model stops running (if it
+        does) and the input side of each strided or resampling op (``resampling=False``: sides only)."""
+        checker = _Checker(self.gm, resampling=resampling)
+        failed = None
+        try:
+            with torch.no_grad():
+                checker.run(torch.empty((1, self.channels, size, size), device="meta", dtype=self.dtype))
+        except Exception as error:  # any failure means "does not run at this size"; where it stopped is recorded
+            lines = str(error).strip().splitlines()
+            failed = (checker.current.name if checker.current is not None else "input",
+                      lines[0] if lines else type(error).__name__)
+        return SizeProbe({v.node: v for v in checker.violations}, failed, checker.sides)
+
+    def conflicts(self, near: int) -> list[StrideConflict]:
+        """Why no input size is exact, when none is: the ops that need sides no size gives them together
+        (:func:`orbify.graph.stride_conflicts.find_conflicts`, probing one period of sides from about ``near``).
+        Empty when some size is exact."""
+        if near not in self._conflicts:
+            self._conflicts[near] = find_conflicts(self.gm, self.probe, near)
+        return self._conflicts[near]
+
+    def nearby(self, size: int, count: int = 3) -> str:
+        """The safe sizes nearest ``size`` as text; where there is none, why (the conflicts), or "none found"."""
+        found = self.safe_sizes(size, count)
+        if found:
+            return ", ".join(map(str, found))
+        conflicts = self.conflicts(size)
+        if conflicts:
+            return str(no_exact_size_error(conflicts)).removesuffix(".")
+        return "none found"
 
     def is_safe(self, size: int | tuple[int, int]) -> bool:
         try:
@@ -225,9 +291,11 @@ class SizeChecker:
 
 
 def safe_sizes(model: nn.Module, near: int, count: int = 5, channels: int = 3) -> list[int]:
-    """Square input sizes near ``near`` at which every strided op of ``model`` is exact.
+    """Square input sizes near ``near`` at which every strided and resampling op of ``model`` is exact.
 
     Up to ``count`` sizes, nearest first (ties: the smaller first); ``channels`` is the model's input channels.
+    Raises :class:`~orbify.errors.InputShapeError` when no input size is exact at all, naming the ops that
+    conflict and what each needs (:meth:`SizeChecker.conflicts`).
 
     >>> from torch import nn
     >>> import orbify
@@ -235,7 +303,11 @@ def safe_sizes(model: nn.Module, near: int, count: int = 5, channels: int = 3) -
     >>> orbify.safe_sizes(model, near=32, count=3)
     [33, 29, 37]
     """
-    return SizeChecker(model, channels).safe_sizes(near, count)
+    checker = SizeChecker(model, channels)
+    found = checker.safe_sizes(near, count)
+    if not found and checker.conflicts(near):
+        raise no_exact_size_error(checker.conflicts(near))
+    return found
 
 
 def input_channels(model: nn.Module) -> int:
@@ -252,6 +324,7 @@ class SizeChoice:
 
     size: int
     reason: str
+    conflicts: tuple[StrideConflict, ...] = ()   # why no input size is exact, when none is
 
 
 def choose_input_size(model: nn.Module, usual: tuple[int, str], *, requested: int | None = None,
@@ -260,10 +333,11 @@ def choose_input_size(model: nn.Module, usual: tuple[int, str], *, requested: in
     """Pick the input side for converting ``model`` and say why.
 
     In order: the ``requested`` size (kept even when unsafe — the reason then names the first
-    strided op that breaks and the nearest safe sizes), the recipe's size, else the safe size
-    nearest ``usual``, the side the architecture is usually run at with what that guess rests on
-    (:func:`orbify.files.sources.usual_input_size`). A size is *safe* when every strided op
-    samples a grid that quarter turns map onto themselves (:class:`SizeChecker`).
+    strided or resampling op that breaks and the nearest safe sizes), the recipe's size, else the safe
+    size nearest ``usual``, the side the architecture is usually run at with what that guess rests on
+    (:func:`orbify.files.sources.usual_input_size`). A size is *safe* when every strided and resampling
+    op samples a grid that quarter turns map onto themselves (:class:`SizeChecker`). When no size is
+    exact at all, ``usual`` is kept and the choice carries the conflicts that say why.
     """
     checker = SizeChecker(model, channels)
     if requested is not None:
@@ -272,21 +346,29 @@ def choose_input_size(model: nn.Module, usual: tuple[int, str], *, requested: in
         return SizeChoice(recipe_size, f"the size of recipe {recipe_name!r}" + _safety(checker, recipe_size))
     usual_size, why = usual
     nearest = checker.safe_sizes(usual_size, 1)
+    conflicts = tuple(checker.conflicts(usual_size)) if not nearest else ()
+    if conflicts:
+        return SizeChoice(usual_size, f"{why}; {no_exact_size_error(conflicts).what}", conflicts)
     if not nearest:
         return SizeChoice(usual_size, f"{why}; no safe size lies near it" + _safety(checker, usual_size))
     if nearest[0] == usual_size:
         return SizeChoice(usual_size, f"{why}, and safe")
-    broken = checker.violations(usual_size)[0]
     return SizeChoice(nearest[0], f"the safe size nearest {usual_size} ({why}); {usual_size} itself is not safe: "
-                                  f"{broken}")
+                                  f"{_first_break(checker, usual_size)}")
+
+
+def _first_break(checker: SizeChecker, size: int) -> str:
+    """The first op that breaks at an unsafe ``size``, or that the model does not run at it."""
+    try:
+        broken = checker.violations(size)
+    except InputShapeError as error:
+        return f"the model does not run at it ({error.what})"
+    return str(broken[0]) if broken else "no op breaks"
 
 
 def _safety(checker: SizeChecker, size: int) -> str:
     """', safe' for a safe size, else a warning naming the first broken op and the nearest safe sizes."""
     if checker.is_safe(size):
         return ", safe"
-    broken = checker.violations(size)
-    first = f": {broken[0]}" if broken else ""
-    nearest = ", ".join(str(s) for s in checker.safe_sizes(size, 3))
-    return (f", NOT safe{first}. The converted model is not exactly equivariant at this size; "
-            f"safe sizes nearby: {nearest or 'none found'}")
+    return (f", NOT safe: {_first_break(checker, size)}. The converted model is not exactly equivariant at this size; "
+            f"safe sizes nearby: {checker.nearby(size)}")

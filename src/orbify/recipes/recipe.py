@@ -13,6 +13,7 @@ from orbify.errors import OptionError, SourceError
 from orbify.files.source_arguments import TORCHVISION_PREFIX, TorchvisionSource
 from orbify.files.sources import EXAMPLE_SOURCE
 from orbify.graph.sizes import SizeChecker
+from orbify.graph.stride_repair import repaired_model
 from orbify.recipes.schema import recipe_error
 
 
@@ -89,18 +90,20 @@ class Recipe:
 
     def check_input_size(self, model: nn.Module, size: int | None = None, channels: int = 3) -> None:
         """Raise RecipeError (key ``convert.input_size``) unless ``size`` (default: the recipe's) is safe
-        for ``model``: every strided op samples a grid the rotations map onto itself."""
+        for ``model`` (repaired first when the recipe says ``repair_strides``): every strided and resampling
+        op samples a grid the rotations map onto itself."""
         size = self.input_size if size is None else size
+        if self.settings["convert"]["repair_strides"]:
+            model, _ = repaired_model(model, channels, size)
         checker = SizeChecker(model, channels)
         if checker.is_safe(size):
             return
         try:
-            reason = f"the first strided op that breaks is {checker.violations(size)[0]}"
+            reason = f"the first strided or resampling op that breaks is {checker.violations(size)[0]}"
         except Exception as error:   # the model does not run at this size at all
             reason = f"the model does not run at it ({type(error).__name__}: {error})"
-        safe = ", ".join(str(s) for s in checker.safe_sizes(size, 5))
         raise recipe_error(self.path, "convert.input_size", f"is {size}, not a safe size for this model: {reason}",
-                           f"the safe sizes nearest {size}: {safe or 'none within reach'}")
+                           f"the safe sizes nearest {size}: {checker.nearby(size, 5)}")
 
 
 def merge_options(recipe: Recipe, overrides: Mapping[str, object], section: str = "convert") -> dict[str, object]:

@@ -112,7 +112,7 @@ _TUNE = TuneOptions()
 
 CONVERT_DEFAULTS: dict[str, object] = {
     name: inspect.signature(convert).parameters[name].default
-    for name in ("group", "budget", "head", "init", "match", "stop_at")}
+    for name in ("group", "budget", "head", "init", "match", "stop_at", "repair_strides")}
 """The conversion options used where neither the command line nor a recipe sets them: the defaults of
 :func:`orbify.convert` itself, read from its signature so that they have one home."""
 
@@ -127,7 +127,7 @@ SECTIONS: dict[str, dict[str, Key]] = {
     },
     "convert": {
         "group": Key(str, "cN or dN, e.g. \"c4\", \"d4\"", check=_group),
-        "input_size": Key(int, "a safe square input size in pixels, ≥ 8 (every strided op exact); "
+        "input_size": Key(int, "a safe square input size in pixels, ≥ 8 (every strided and resampling op exact); "
                                "`orbify sizes SOURCE` lists them", check=_at_least(8)),
         "budget": Key(str, ", ".join(BUDGETS), CONVERT_DEFAULTS["budget"], _choice(BUDGETS)),
         "head": Key(str, ", ".join(HEADS), CONVERT_DEFAULTS["head"], _choice(HEADS)),
@@ -135,6 +135,8 @@ SECTIONS: dict[str, dict[str, Key]] = {
         "match": Key(bool, "true or false", CONVERT_DEFAULTS["match"]),
         "stop_at": Key(str, "a graph node name or module path of the model, e.g. \"layer4\"",
                        CONVERT_DEFAULTS["stop_at"]),
+        "repair_strides": Key(bool, "true or false: replace one op of each pair needing input sides of opposite "
+                                    "parity (orbify convert --repair-strides)", CONVERT_DEFAULTS["repair_strides"]),
     },
     "calibrate": {
         "images": Key(int, "an integer ≥ 1: how many calibration images init = \"calibrated\" reads (evenly spaced)",

@@ -17,6 +17,7 @@ from rich.text import Text
 
 from orbify.common.safe_io import atomic_write
 from orbify.errors import OptionError
+from orbify.graph.stride_repair import REPAIR_NOTE
 from orbify.verification.check import CheckReport
 from orbify.verification.summary import LayerRow, ModelSummary, SummaryDiff
 
@@ -75,9 +76,10 @@ def check_sections(report: CheckReport) -> list[tuple[str, tuple[str, ...], list
         ("Drift from the original (upright inputs)", ("measure", "value"), _drift_rows(report)),
         ("Input size", ("measure", "value"), [
             ("size", f"{size.input_size[0]}×{size.input_size[1]}: " + ("safe" if size.safe else "NOT safe")),
-            ("first strided layer that breaks", size.first_violation_detail or "-"),
-            ("strided layers that break", ", ".join(size.violations) or "-"),
+            ("first strided or resampling op that breaks", size.first_violation_detail or "-"),
+            ("strided or resampling ops that break", ", ".join(size.violations) or "-"),
             ("nearest safe sizes", ", ".join(map(str, size.safe_sizes)) or "-"),
+            *_repair_rows(report),
         ]),
         *_segmentation_sections(report),
         _layer_section(report),
@@ -86,6 +88,12 @@ def check_sections(report: CheckReport) -> list[tuple[str, tuple[str, ...], list
     if notes:
         sections.append(("Notes", ("note",), [(note,) for note in notes]))
     return sections
+
+
+def _repair_rows(report: CheckReport) -> list[tuple[str, str]]:
+    """A row counting the ops --repair-strides replaced (each is a note of the plan), when it replaced any."""
+    repairs = [note for note in report.notes if note.startswith(f"{REPAIR_NOTE}: '")]
+    return [("ops replaced by --repair-strides", f"{len(repairs)} (see the notes)")] if repairs else []
 
 
 NOT_MEASURED = "not measured"
