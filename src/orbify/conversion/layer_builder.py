@@ -7,7 +7,7 @@ keeps it with the original and what carrying weights into it needs.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import torch
 from torch import fx, nn
@@ -17,8 +17,8 @@ from orbify.errors import WidthError
 from orbify.graph.plan import orbits_for
 from orbify.graph.rules import CONVERT_UP_TO, ConversionContext, Step
 from orbify.graph.tracing import describe, shape
-from orbify.layers.tied import OrbitBatchNorm, conv_fibre, tie_conv, tie_linear
-from orbify.symmetry.layouts import Flat, Layout, Orbit, Permuted, Plain
+from orbify.layers.tied import OrbitBatchNorm, conv_fibre, tie_attention, tie_conv, tie_linear
+from orbify.symmetry.layouts import Flat, Layout, Orbit, Permuted, Plain, Tokens
 from orbify.transfer.channels import ChannelMap, rows
 from orbify.transfer.kinds import is_depthwise
 from orbify.transfer.loading import carried_weight, factory_kwargs
@@ -46,9 +46,9 @@ class TiedLayer:
     """A conv or linear being converted: its new tied module and what carrying weights into it needs.
 
     ``fed`` is kept once matching has prepared the weight (to reuse it), ``matched`` once matching
-    has found the tied weight for its chosen rows. ``dims``: a Linear over the last axis of a channels-last
-    value reads and writes values with their axes permuted by ``dims`` (``lin`` and ``lout`` are their
-    layouts with the axes in order).
+    has found the tied weight for its chosen rows. ``axes``: the layout of the channels-last value (a
+    :class:`Permuted` map or a :class:`Tokens` sequence) that a Linear over the last axis reads; it writes a
+    value with the same axes (``lin`` and ``lout`` are the layouts of their channels).
     """
 
     old: nn.Module
@@ -59,7 +59,7 @@ class TiedLayer:
     notes: list[str] = field(default_factory=list)
     fed: FedWeight | None = None
     matched: MatchedWeight | None = None
-    dims: tuple[int, ...] | None = None
+    axes: Permuted | None = None
 
     @property
     def transposed(self) -> bool:
@@ -70,8 +70,8 @@ class TiedLayer:
         return is_depthwise(self.old)
 
     def permuted(self, layout: Layout) -> Layout:
-        """``layout`` with this layer's axes (:class:`Permuted` for a layer over a channels-last value)."""
-        return layout if self.dims is None else Permuted(layout, self.dims)
+        """``layout`` with this layer's axes (a channels-last value's layout with ``layout`` as its channels)."""
+        return layout if self.axes is None else replace(self.axes, inner=layout)
 
     def weight(self, in_map: ChannelMap, source: torch.Tensor | None) -> torch.Tensor:
         """The original weight, out-first, output rows picked by ``source`` (None: original order), inputs fed."""
@@ -103,13 +103,13 @@ class LayerBuilder:
         lin = state.layouts[node.all_input_nodes[0]]
         step = step or Step(node, [lin], self.ctx)
         if isinstance(old, nn.Linear):
-            dims = self._linear_axes(step, lin)
-            lin = lin.inner if dims is not None else lin
+            axes = self._linear_axes(step, lin)
+            lin = lin.inner if axes is not None else lin
             lout = self._output_layout(node, old.out_features)
             new = self._new(nn.Linear, lin.size(state.group), lout.size(state.group), bias=old.bias is not None,
                             **factory_kwargs(old.weight))
             tie_linear(new, state.group, lin, lout, where=describe(node), project=not state.carry)
-            layer = TiedLayer(old, new, lin, lout, dims=dims)
+            layer = TiedLayer(old, new, lin, lout, axes=axes)
         else:
             layer = self._conv(node, step, old, lin)
         self.layers[node] = layer
@@ -119,8 +119,8 @@ class LayerBuilder:
         """Forget ``node``'s layer once converted (it holds weights kept for matching)."""
         self.layers.pop(node)
 
-    def _linear_axes(self, step: Step, lin: Layout) -> tuple[int, ...] | None:
-        """The axes of a channels-last value a Linear reads over its last axis (None: (B, C) features).
+    def _linear_axes(self, step: Step, lin: Layout) -> Permuted | None:
+        """The layout of the channels-last value a Linear reads over its last axis (None: (B, C) features).
 
         Refuses a Linear over another axis than the channels, and calibration of one over channels last.
         """
@@ -130,12 +130,24 @@ class LayerBuilder:
                 raise step.refuse("Calibration does not refit a Linear over channels last yet",
                                   "convert with init='orbit-average' (--init orbit-average) and tune, or convert "
                                   "only up to the node before it")
-            return lin.dims
+            return lin
         if rank > 2 or isinstance(lin, Permuted) or not isinstance(lin, (Plain, Orbit, Flat)):
             raise step.refuse("A Linear over an axis that does not hold the channels",
                               "apply it to (B, C) features or over the last axis of a channels-last map, or "
                               + CONVERT_UP_TO)
         return None
+
+    def attention(self, step: Step, layout: Tokens) -> nn.MultiheadAttention:
+        """A new self-attention module like ``step``'s, tied over the channels of ``layout`` (batch first only)."""
+        old = self.state.module(step.node)
+        if not old.batch_first:
+            raise step.refuse("Attention over (N, B, C) sequences (batch_first=False)",
+                              "build the attention with batch_first=True, or " + CONVERT_UP_TO)
+        new = self._new(nn.MultiheadAttention, old.embed_dim, old.num_heads, dropout=old.dropout,
+                        bias=old.in_proj_bias is not None, add_bias_kv=old.bias_k is not None,
+                        kdim=old.kdim, vdim=old.vdim, batch_first=True, **factory_kwargs(old.out_proj.weight))
+        return tie_attention(new, self.state.group, layout.inner, where=describe(step.node),
+                             project=not self.state.carry)
 
     def _conv(self, node: fx.Node, step: Step, old: nn.Module, lin: Layout) -> TiedLayer:
         group = self.state.group
@@ -199,6 +211,8 @@ def channels_of(module: nn.Module) -> tuple[int, int]:
         return (module.num_features,) * 2
     if isinstance(module, nn.GroupNorm):
         return (module.num_channels,) * 2
+    if isinstance(module, nn.MultiheadAttention):
+        return (module.embed_dim,) * 2
     if isinstance(module, nn.LayerNorm):
         return (module.normalized_shape[0],) * 2
     return (0, 0)

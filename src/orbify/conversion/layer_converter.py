@@ -10,16 +10,24 @@ from torch import fx, nn
 
 from orbify.conversion.channel_choice import ChannelChooser
 from orbify.conversion.graph_edits import ModuleReplacer
-from orbify.conversion.layer_builder import LayerBuilder
+from orbify.conversion.layer_builder import LayerBuilder, TiedLayer
 from orbify.conversion.norms import affine_norm_for, batch_norm_for
 from orbify.conversion.recording import record_layer, record_norm
 from orbify.conversion.state import ConversionState
+from orbify.conversion.token_weights import (
+    TiedTensors,
+    attention_residual,
+    attention_weights,
+    carry_attention,
+    token_tensor_rows,
+)
 from orbify.conversion.weight_loading import carry_layer_weights
 from orbify.graph.channels_last import ChannelParameter
 from orbify.graph.rules import Step
-from orbify.layers.tied import tie_affine, tie_channel_tensor
+from orbify.graph.tokens import TokenParameter
+from orbify.layers.tied import tie_affine, tie_channel_tensor, tie_entries
 from orbify.symmetry.groups import Group
-from orbify.symmetry.layouts import Layout, Orbit, unpermuted
+from orbify.symmetry.layouts import Layout, unpermuted
 from orbify.transfer.channels import rows
 from orbify.transfer.norms import load_norm_rows
 
@@ -38,8 +46,7 @@ class LayerConverter:
         self.builder = LayerBuilder(state, plain_outputs, self)
         self.chooser = ChannelChooser(state, self.builder)
         self.replacer = ModuleReplacer(state.gm)
-        self.tied_tensors: dict[str, Orbit] = {}   # per-channel tensors tied so far (target → layout)
-        self.tied_note = 0   # where the plan's notes list them
+        self.tied_tensors = TiedTensors(state.plan.notes)   # per-channel and token tensors tied so far
 
     @property
     def layouts(self) -> Mapping[fx.Node, Layout | None]:
@@ -61,7 +68,7 @@ class LayerConverter:
         self.builder.done(node)
         state.maps[node], state.identity_maps[node] = out_map, identity_map
         record_layer(state, node, layer, residual, identity_residual)
-        if layer.dims is not None:   # over the last axis of a channels-last value: recorded with its axes
+        if layer.axes is not None:   # over the last axis of a channels-last value: recorded with its axes
             entry = state.plan.layers[-1]
             entry.layout_in, entry.layout_out = layer.permuted(layer.lin), layer.permuted(layer.lout)
         return layer.permuted(layer.lout)
@@ -88,29 +95,50 @@ class LayerConverter:
         The entries are picked by the channel map of the value it multiplies (so the widths may change)
         and averaged per orbit; a tensor used again must meet the same layout. The plan's notes list them.
         """
-        state, target = self.state, parameter.attribute.target
-        if target in self.tied_tensors:
-            if self.tied_tensors[target] != parameter.layout:
-                raise step.refuse(f"The per-channel tensor '{target}' is used on values of different layouts "
-                                  f"({self.tied_tensors[target]} and {parameter.layout})",
-                                  "use one tensor per value it scales, or convert only up to the node before it")
+        state = self.state
+        if self.tied_tensors.seen(step, parameter.attribute.target, parameter.layout):
             return
         owner, name = self._owner(parameter.attribute)
         target = parameter.attribute.target   # changed when the tensor moved from the top module
         old = getattr(owner, name).detach()
-        source = next(state.maps[arg] for arg in step.node.all_input_nodes if state.layouts.get(arg) is not None).source
+        source = self._value_source(step)
         if source.numel() != old.numel() and any(old.numel() in _integers(node.args) for node in parameter.shaping):
             raise step.refuse(f"The per-channel tensor '{target}' is reshaped to its {old.numel()} channels by "
                               f"number, but the converted value has {source.numel()}",
                               "reshape it with -1 for the channel axis, or use the 'channels' budget")
         value = rows(old.reshape(-1), source).reshape(tuple(source.numel() if size > 1 else 1 for size in old.shape))
         tie_channel_tensor(owner, name, value, state.group, parameter.layout)
-        self.tied_tensors[target] = parameter.layout
-        note = f"per-channel tensors tied per orbit (orbit-averaged): {', '.join(self.tied_tensors)}"
-        if len(self.tied_tensors) == 1:
-            self.tied_note = len(state.plan.notes)
-            state.plan.notes.append(note)
-        state.plan.notes[self.tied_note] = note
+        self.tied_tensors.add("per-channel tensors tied per orbit (orbit-averaged)", target, parameter.layout)
+
+    def tie_token_parameter(self, step: Step, parameter: TokenParameter) -> None:
+        """Tie a class token or position embedding over the joint orbits of tokens and channels, its channel entries
+        those of the channels of the tokens it meets; the plan's notes list them."""
+        if self.tied_tensors.seen(step, parameter.attribute.target, parameter.layout):
+            return
+        owner, name = self._owner(parameter.attribute)
+        value = token_tensor_rows(getattr(owner, name).detach(), self._value_source(step), parameter.layout)
+        tie_entries(owner, name, value, parameter.layout.entry_permutation(self.group, tuple(value.shape)))
+        self.tied_tensors.add("token tensors averaged over the joint orbits of patch tokens and channels",
+                        parameter.attribute.target, parameter.layout)
+
+    def convert_attention(self, step: Step) -> Layout:
+        """Replace a self-attention module by its tied counterpart (identity channel assignment inside it)."""
+        state, node, layout = self.state, step.node, step.layout
+        old, new = state.module(node), self.builder.attention(step, layout)
+        residual = identity_residual = None
+        if state.carry:
+            in_node = node.all_input_nodes[0]
+            residual = identity_residual = carry_attention(new, old, state.maps[in_node])
+            if state.identity_maps[in_node] is not state.maps[in_node]:
+                identity_residual = attention_residual(new, attention_weights(old, state.identity_maps[in_node]))
+        self.replacer.replace(node, new)
+        record_layer(state, node, TiedLayer(old, new, layout, layout), residual, identity_residual)
+        return layout
+
+    def _value_source(self, step: Step) -> torch.Tensor:
+        """The original channel of every channel of the value ``step``'s model tensor meets."""
+        state = self.state
+        return next(state.maps[arg] for arg in step.node.all_input_nodes if state.layouts.get(arg) is not None).source
 
     def _owner(self, attribute: fx.Node) -> tuple[nn.Module, str]:
         """The module holding a ``get_attr`` node's tensor, and the tensor's name there.

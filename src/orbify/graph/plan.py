@@ -14,7 +14,7 @@ from dataclasses import asdict, dataclass, field
 from typing import Protocol
 
 from orbify.symmetry.groups import Group
-from orbify.symmetry.layouts import Flat, Layout, Orbit, Permuted, Plain, unpermuted
+from orbify.symmetry.layouts import Flat, Layout, Orbit, Permuted, Plain, Tokens, unpermuted
 
 BUDGETS = ("channels", "params", "fields")
 HEADS = ("invariant", "map")
@@ -163,7 +163,7 @@ def _layout_text(layout: Layout | None) -> str:
 
 def _layout_from_text(text: str) -> Layout | None:
     """The layout :func:`layout_text` wrote: ``plain(3)``, ``orbit(16)``, ``flat(orbit(16)×7×7)``,
-    ``permuted(orbit(16), 0,2,3,1)`` or ``-``."""
+    ``permuted(orbit(16), 0,2,3,1)``, ``tokens(orbit(16), 1+14×14, 0,2,1)`` or ``-``."""
     if text == _NO_LAYOUT:
         return None
     match = re.fullmatch(r"(plain|orbit)\((\d+)\)", text)
@@ -173,6 +173,11 @@ def _layout_from_text(text: str) -> Layout | None:
     match = re.fullmatch(r"flat\((.+)×(\d+)×(\d+)\)", text)
     if match:
         return Flat(_layout_from_text(match.group(1)), int(match.group(2)), int(match.group(3)))
+    match = re.fullmatch(r"tokens\((.+), (\d+)\+(\d+)×(\d+), ([\d,]+)\)", text)
+    if match:
+        dims = tuple(int(d) for d in match.group(5).split(","))
+        prefix, height, width = (int(match.group(i)) for i in (2, 3, 4))
+        return Tokens(_layout_from_text(match.group(1)), dims, height, width, prefix)
     match = re.fullmatch(r"permuted\((.+), ([\d,]+)\)", text)
     if match:
         return Permuted(_layout_from_text(match.group(1)), tuple(int(d) for d in match.group(2).split(",")))

@@ -30,9 +30,19 @@ from orbify.graph.channels_last import (
     ChannelParameter,
     tie_constant_operands,
 )
+from orbify.graph.tokens import (
+    TOKEN_FUNCTIONS,
+    TOKEN_METHODS,
+    TOKEN_MODULES,
+    TokenParameter,
+    concatenate_tokens,
+    tie_token_operands,
+    token_mean,
+    tokens_from_grid,
+)
 from orbify.graph.tracing import describe, shape
 from orbify.symmetry.groups import Group
-from orbify.symmetry.layouts import Flat, Layout, Orbit, Plain
+from orbify.symmetry.layouts import Flat, Layout, Orbit, Plain, Tokens
 
 
 @dataclass
@@ -81,6 +91,13 @@ class ConversionContext(Protocol):
     def tie_channel_parameter(self, step: Step, parameter: ChannelParameter) -> None:
         """A per-channel model tensor used by ``step``'s elementwise op: tied per orbit, its values carried."""
 
+    def tie_token_parameter(self, step: Step, parameter: TokenParameter) -> None:
+        """A model tensor meeting token values (a class token, a position embedding): tied over the joint orbits of
+        tokens and channels, its values carried."""
+
+    def convert_attention(self, step: Step) -> Layout:
+        """An ``nn.MultiheadAttention`` over a token sequence: q, k, v and output projection tied orbit → orbit."""
+
 
 Rule = Callable[[Step], "Layout | None"]
 
@@ -104,7 +121,10 @@ def elementwise(step: Step) -> Layout | None:
     if any(layout != first for layout in varying[1:]):
         raise step.refuse("An elementwise op combines tensors of different layouts",
                           "make both operands come from layers of the same width, or " + CONVERT_UP_TO)
-    tie_constant_operands(step, first)   # parameters and constants: per-channel ones tied per orbit
+    if isinstance(first, Tokens):   # position embeddings, class-token scales: tied over token and channel orbits
+        tie_token_operands(step, first)
+    else:
+        tie_constant_operands(step, first)   # parameters and constants: per-channel ones tied per orbit
     return first
 
 
@@ -117,6 +137,8 @@ def broadcasts_channel(node: fx.Node) -> bool:
 def concatenate(step: Step) -> Layout | None:
     dim = step.node.kwargs.get("dim", step.node.args[1] if len(step.node.args) > 1 else 0)
     parts = [step.arg_layout(a) for a in step.node.args[0]]
+    if any(isinstance(p, Tokens) for p in parts):
+        return concatenate_tokens(step)
     rank = len(shape(step.node) or ())
     if dim not in (1, 1 - rank):
         raise step.refuse(f"Concatenation along dim {dim} (only the channel dim 1 keeps layouts)", CONVERT_UP_TO)
@@ -135,6 +157,11 @@ def flatten(step: Step) -> Layout | None:
     layout = step.layout
     if in_shape is None or out_shape is None or layout is None:
         return layout
+    if isinstance(layout, Tokens):
+        raise step.refuse("Flattening a token sequence", "read a class token (x[:, 0]) or the mean over the tokens, "
+                          "or " + CONVERT_UP_TO)
+    if len(in_shape) == 4 and len(out_shape) == 3 and out_shape[:2] == in_shape[:2]:
+        return tokens_from_grid(step)   # flatten(2) of a patch map
     if len(out_shape) != 2 or out_shape[0] != in_shape[0]:
         raise step.refuse(f"A reshape from {in_shape} to {out_shape} moves channels across the batch axis",
                           "only flatten from dim 1 on is supported; " + CONVERT_UP_TO)
@@ -153,7 +180,12 @@ def reshape(step: Step) -> Layout | None:
     in_shape, out_shape = shape(step.node.args[0]), shape(step.node)
     if step.layout is None:   # a parameter shaped to broadcast
         return None
+    if isinstance(step.layout, Tokens) and in_shape != out_shape:
+        raise step.refuse(f"A reshape of a token sequence from {in_shape} to {out_shape}",
+                          "keep token sequences (B, N, C) whole, or " + CONVERT_UP_TO)
     if in_shape is not None and out_shape is not None and in_shape[:2] == out_shape[:2]:
+        if len(in_shape) == 4 and len(out_shape) == 3 and in_shape[2] == in_shape[3]:
+            return tokens_from_grid(step)   # a patch map flattened into tokens
         return step.layout
     if out_shape is not None and len(out_shape) == 2:
         return flatten(step)
@@ -166,6 +198,8 @@ def spatial_mean(step: Step) -> Layout | None:
     dims = step.node.kwargs.get("dim", step.node.args[1] if len(step.node.args) > 1 else None)
     rank = len(shape(step.node.args[0]) or ())
     dims = (dims,) if isinstance(dims, int) else tuple(dims or ())
+    if isinstance(step.layout, Tokens):
+        return token_mean(step)
     if dims and all(d % rank >= 2 for d in dims):
         return step.layout
     raise step.refuse(f"A reduction over dims {dims} mixes channels", CONVERT_UP_TO)
@@ -285,3 +319,6 @@ def _register_orbify_modules() -> None:
 _register_orbify_modules()
 FUNCTION_RULES.update(CHANNELS_LAST_FUNCTIONS)
 METHOD_RULES.update(CHANNELS_LAST_METHODS)
+MODULE_RULES.update(TOKEN_MODULES)
+FUNCTION_RULES.update(TOKEN_FUNCTIONS)   # token values first, then the channels-last and channel-part rules
+METHOD_RULES.update(TOKEN_METHODS)

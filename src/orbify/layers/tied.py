@@ -68,9 +68,9 @@ def _register(module: nn.Module, name: str, parametrization: nn.Module, project:
         parametrization.__dict__.pop("right_inverse", None)
 
 
-def _tie_bias(module: nn.Module, group: Group, out_layout: Layout) -> None:
-    if getattr(module, "bias", None) is not None and isinstance(out_layout, Orbit):
-        _register(module, "bias", TiedPerOrbit(group, out_layout.orbits))
+def _tie_bias(module: nn.Module, group: Group, out_layout: Layout, name: str = "bias") -> None:
+    if getattr(module, name, None) is not None and isinstance(out_layout, Orbit):
+        _register(module, name, TiedPerOrbit(group, out_layout.orbits))
 
 
 def tie_conv(conv: nn.Conv2d | nn.ConvTranspose2d, group: Group, in_layout: Layout, out_layout: Layout,
@@ -151,7 +151,12 @@ def tie_channel_tensor(module: nn.Module, name: str, value: torch.Tensor, group:
     A parameter stays tied per orbit (parametrized, so training keeps it tied); a buffer or a plain tensor
     attribute (a constant) is stored averaged. The tensor's requires_grad and persistence are kept.
     """
-    tying = ChannelTensorTying(group, layout.orbits, tuple(value.shape))
+    _store_tied(module, name, value, ChannelTensorTying(group, layout.orbits, tuple(value.shape)))
+
+
+def _store_tied(module: nn.Module, name: str, value: torch.Tensor, tying: nn.Module) -> None:
+    """Store ``value`` tied by ``tying`` as tensor ``name`` of ``module``: a parameter parametrized (its requires_grad
+    kept), a buffer (its persistence kept) or a plain attribute stored projected."""
     old = getattr(module, name)
     if isinstance(old, nn.Parameter):
         setattr(module, name, nn.Parameter(value.clone(), requires_grad=old.requires_grad))
@@ -161,6 +166,81 @@ def tie_channel_tensor(module: nn.Module, name: str, value: torch.Tensor, group:
                                persistent=name not in module._non_persistent_buffers_set)
     else:
         setattr(module, name, tying(tying.right_inverse(value)))
+
+
+def tie_attention(attention: nn.MultiheadAttention, group: Group, layout: Layout, where: str = "", *,
+                  project: bool = True) -> nn.MultiheadAttention:
+    """Tie a self-attention module in place over token channels of ``layout`` (docs/design.md §5).
+
+    The stacked q, k, v projection (3C × C) is tied orbit → orbit: with C = orbits·|G|, the stacked 3C outputs
+    are themselves 3·orbits whole orbits. The output projection is tied orbit → orbit, the biases per orbit.
+    On orbit channels every head must hold whole orbits (head width a multiple of |G|): a slot permutation
+    then stays inside each head, so each head's q·k is unchanged by it and the attention matrix moves only
+    with the tokens. ``project`` as in :func:`tie_conv`. Refuses (:class:`WidthError`) other widths, separate
+    q/k/v projections and added key/value biases, naming the widths that work.
+    """
+    n, width = group.order, layout.size(group)
+    if attention.embed_dim != width:
+        raise WidthError(f"The attention has width {attention.embed_dim} but its tokens {layout} have {width} "
+                         "channels", where=where or None,
+                         fix="keep the attention's width: use the 'channels' budget on a width divisible by |G|")
+    if not attention._qkv_same_embed_dim or attention.bias_k is not None:
+        raise WidthError("Attention with separate key/value widths or added key/value biases is not tied",
+                         where=where or None, fix="use kdim = vdim = embed_dim and add_bias_kv=False")
+    if isinstance(layout, Orbit) and attention.head_dim % n:
+        raise WidthError(head_width_refusal(attention.embed_dim, attention.num_heads, n), where=where or None,
+                         fix=head_width_fix(attention.embed_dim, attention.num_heads, n))
+    stacked = Orbit(3 * layout.orbits) if isinstance(layout, Orbit) else Plain(3 * width)
+    tying = tied_weight(group, stacked, layout, ())
+    if not tying.is_trivial:
+        _register(attention, "in_proj_weight", tying, project)
+    _tie_bias(attention, group, stacked, "in_proj_bias")
+    tie_linear(attention.out_proj, group, layout, layout, where, project=project)
+    return attention
+
+
+def head_width_refusal(width: int, heads: int, order: int) -> str:
+    """Why ``heads`` heads of a ``width``-wide attention cannot be tied under a group of ``order`` elements."""
+    return (f"{heads} attention heads of width {width // heads} cannot each hold whole orbits of {order} channels "
+            f"(the head width must be a multiple of {order})")
+
+
+def head_width_fix(width: int, heads: int, order: int) -> str:
+    """The widths and head counts that work instead."""
+    counts = [h for h in range(1, width // order + 1) if width % (h * order) == 0]
+    widths = [heads * order * k for k in range(1, 4)]
+    return (f"use an embedding width that is a multiple of {heads}·{order} = {heads * order} (e.g. "
+            f"{', '.join(map(str, widths))}), or, at width {width}, a head count among {counts}; or a group of "
+            "smaller order")
+
+
+class EntryTying(nn.Module):
+    """Parametrization of a tensor whose entries a group permutes (a position embedding, a class token): one value
+    per orbit of entries. ``permutation`` (|G|, numel) gives the source entry of every entry of g·t."""
+
+    def __init__(self, permutation: torch.Tensor, shape: tuple[int, ...]):
+        super().__init__()
+        _, orbit = torch.unique(permutation.min(0).values, return_inverse=True)   # an orbit's smallest entry
+        self.register_buffer("orbit", orbit, persistent=False)
+        self.register_buffer("orbit_size", torch.bincount(orbit).to(torch.float64), persistent=False)
+        self.shape = shape
+        self.base_shape = (int(orbit.max()) + 1,)
+
+    def forward(self, base: torch.Tensor) -> torch.Tensor:
+        return base.index_select(0, self.orbit).reshape(self.shape)
+
+    def right_inverse(self, value: torch.Tensor) -> torch.Tensor:
+        sums = value.new_zeros(self.base_shape).index_add_(0, self.orbit, value.reshape(-1))
+        return sums / self.orbit_size.to(value.dtype)
+
+
+@torch.no_grad()
+def tie_entries(module: nn.Module, name: str, value: torch.Tensor, permutation: torch.Tensor) -> None:
+    """Make tensor ``name`` of ``module`` the orbit average of ``value`` under the entry ``permutation``.
+
+    A parameter stays tied (parametrized by :class:`EntryTying`); a buffer or constant is stored averaged.
+    """
+    _store_tied(module, name, value, EntryTying(permutation, tuple(value.shape)))
 
 
 class OrbitBatchNorm(nn.modules.batchnorm._BatchNorm):
@@ -289,5 +369,5 @@ def _bake_batch_norm(bn: OrbitBatchNorm) -> nn.modules.batchnorm._BatchNorm:
     return plain.train(bn.training)
 
 
-__all__ = ["ChannelTensorTying", "OrbitBatchNorm", "OrbitPool", "bake", "conv_fibre", "orbit_pool", "tie_affine",
-           "tie_channel_tensor", "tie_conv", "tie_linear"]
+__all__ = ["ChannelTensorTying", "EntryTying", "OrbitBatchNorm", "OrbitPool", "bake", "conv_fibre", "orbit_pool",
+           "tie_affine", "tie_attention", "tie_channel_tensor", "tie_conv", "tie_entries", "tie_linear"]

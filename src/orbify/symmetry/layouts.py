@@ -10,10 +10,13 @@ well for spatial tensors (``Group.act_grid``); :func:`act` applies both.
 * :class:`Flat` — the flattened (C, H, W) map of an inner layout; g permutes the entries.
 * :class:`Permuted` — a (B, C, H, W) tensor of an inner layout with its axes permuted (channels last:
   (B, H, W, C)); g acts as on the inner layout, on the axes where they now are.
+* :class:`Tokens` — a sequence of tokens (B, N, C): fixed prefix tokens (a class token) and a patch grid
+  flattened row by row; g permutes the channels as the inner layout and the grid tokens as it moves pixels.
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
 
 import torch
@@ -125,6 +128,65 @@ class Permuted(Layout):
         return f"permuted({self.inner}, {','.join(map(str, self.dims))})"
 
 
+@dataclass(frozen=True)
+class Tokens(Permuted):
+    """A token sequence ``x.permute(dims)`` of a (B, C, N) tensor ``x`` whose channels have layout ``inner``.
+
+    The N = ``prefix`` + ``height``·``width`` tokens are ``prefix`` fixed tokens (class and register tokens) followed
+    by a ``height``×``width`` grid of patches flattened row by row. A group element permutes the channels as
+    ``inner``'s (``size`` and ``permutation`` are ``inner``'s, as for :class:`Permuted`), moves the grid tokens
+    as it moves pixels (:meth:`token_permutation`) and leaves the prefix in place (docs/design.md §3).
+    ``dims`` = (0, 2, 1) is the usual (B, N, C) sequence, (0, 1, 2) the (B, C, N) one.
+    """
+
+    height: int
+    width: int
+    prefix: int
+
+    @property
+    def tokens(self) -> int:
+        """Number of tokens N."""
+        return self.prefix + self.height * self.width
+
+    @property
+    def token_axis(self) -> int:
+        """The axis that holds the tokens."""
+        return self.dims.index(2)
+
+    def token_permutation(self, group: Group) -> torch.Tensor:
+        """Long tensor (|G|, N): row g gives the source token of every token of g·x."""
+        group._require_exact("Moving patch tokens")
+        grid = torch.arange(self.height * self.width).view(self.height, self.width) + self.prefix
+        fixed = torch.arange(self.prefix)
+        return torch.stack([torch.cat([fixed, group.act_grid(g, grid).flatten()]) for g in range(group.order)])
+
+    def entry_permutation(self, group: Group, shape: tuple[int, ...]) -> torch.Tensor:
+        """Long tensor (|G|, numel): the source entry of every entry of g·t for a tensor t of ``shape`` that
+        broadcasts against a value of this layout (axes aligned from the right, as broadcasting aligns them).
+
+        The channel axis moves as ``inner``'s channels, the token axis as the tokens (it must hold all of them,
+        or be of size one); other axes must be of size one.
+        """
+        offset = len(self.dims) - len(shape)
+        moves = {self.channel_axis - offset: self.permutation(group), self.token_axis - offset: None}
+        if any(size > 1 and axis not in moves for axis, size in enumerate(shape)):
+            raise ValueError(f"a tensor of shape {shape} varies along an axis other than tokens and channels")
+        if shape[self.token_axis - offset] > 1:
+            moves[self.token_axis - offset] = self.token_permutation(group)
+        index = torch.arange(math.prod(shape)).view(shape)
+        rows = []
+        for g in range(group.order):
+            moved = index
+            for axis, permutation in moves.items():
+                if 0 <= axis < len(shape) and shape[axis] > 1:
+                    moved = moved.index_select(axis, permutation[g])
+            rows.append(moved.flatten())
+        return torch.stack(rows)
+
+    def __str__(self) -> str:
+        return f"tokens({self.inner}, {self.prefix}+{self.height}×{self.width}, {','.join(map(str, self.dims))})"
+
+
 def unpermuted(layout: Layout | None) -> Layout | None:
     """The layout of the value with its axes in the usual order: ``inner`` of a :class:`Permuted`, else ``layout``."""
     return layout.inner if isinstance(layout, Permuted) else layout
@@ -133,8 +195,12 @@ def unpermuted(layout: Layout | None) -> Layout | None:
 def act(group: Group, layout: Layout, g: int, x: torch.Tensor, channel_dim: int = 1) -> torch.Tensor:
     """Apply element g to a tensor of the given layout (channels on ``channel_dim``, pixels last).
 
-    A :class:`Permuted` tensor is acted on with its axes put back in order (``channel_dim`` then applies there).
+    A :class:`Permuted` tensor is acted on with its axes put back in order (``channel_dim`` then applies there);
+    a :class:`Tokens` one has its channels and its tokens permuted where they are.
     """
+    if isinstance(layout, Tokens):
+        x = x.index_select(layout.channel_axis, layout.permutation(group)[g].to(x.device))
+        return x.index_select(layout.token_axis, layout.token_permutation(group)[g].to(x.device))
     if isinstance(layout, Permuted):
         back = sorted(range(len(layout.dims)), key=layout.dims.__getitem__)
         return act(group, layout.inner, g, x.permute(back), channel_dim).permute(layout.dims)

@@ -284,6 +284,8 @@ def _equivariance(model: nn.Module, layouts: dict[str, Layout], group: Group, im
 
     def hook(target: str):
         def record(module, args, output):
+            if isinstance(output, (tuple, list)):   # attention returns (values, weights or None)
+                output = next((item for item in output if isinstance(item, torch.Tensor)), None)
             if not isinstance(output, torch.Tensor):
                 return
             if current["g"] is None:

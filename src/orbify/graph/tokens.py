@@ -1,0 +1,252 @@
+"""Token sequences: the layout rules of vision transformers (docs/design.md §5).
+
+A quarter turn or a mirror of an image whose sides are multiples of the patch size only *permutes the
+patches*. After the patch embedding (a conv with kernel = stride = patch, tied like any lifting conv)
+the (B, C, h, w) map is flattened to (B, C, h·w) and moved to (B, h·w, C): the token axis then carries
+the grid's permutation action (:class:`~orbify.symmetry.layouts.Tokens`), the last axis the channels.
+
+* **Class and register tokens** concatenated in front stay in place; each is a model tensor, tied
+  to be the same on every slot of an orbit (through ``ctx.tie_token_parameter``).
+* **Position embeddings** added to the tokens are projected onto the tensors that the joint action
+  (grid permutation of tokens, slot permutation of channels) leaves unchanged: one value per orbit
+  of (token, channel) entries.
+* **LayerNorm and Linear layers** over the last axis are converted as over any channels-last value.
+* **Attention** (``nn.MultiheadAttention``, self-attention, batch first): q, k, v and the output
+  projection are tied orbit → orbit and every head holds whole orbits, so a slot permutation stays
+  inside each head, q·k per head is unchanged by it and the attention matrix moves with the token
+  permutation (``ctx.convert_attention``).
+* **Reading out**: ``x[:, i]`` of a prefix token is a (B, C) value of the channels' layout; ``x[:, p:]``
+  keeps the patch grid; the mean over tokens is a (B, C) value.
+
+The rules here are registered in :mod:`orbify.graph.rules` (which calls :func:`tokens_from_grid`,
+:func:`concatenate_tokens` and :func:`tie_token_operands` from its own rules); this module does not import it.
+"""
+
+from __future__ import annotations
+
+import operator
+from collections.abc import Sequence
+from dataclasses import dataclass, replace
+from typing import TYPE_CHECKING
+
+import torch
+from torch import fx, nn
+
+from orbify.graph.channel_order import Parts, take_part
+from orbify.graph.channels_last import movedim as channels_last_movedim
+from orbify.graph.channels_last import permute as channels_last_permute
+from orbify.graph.tracing import shape
+from orbify.symmetry.layouts import Layout, Orbit, Plain, Tokens
+
+if TYPE_CHECKING:
+    from orbify.graph.rules import Step
+
+_STOP_BEFORE = "or convert only up to the node before it (--stop-at)"
+#: Ops that pass a model tensor on without moving its entries (the path from a ``get_attr`` to its use).
+_PASSING = {"expand", "contiguous", "float", "double", "half", "to", "type"}
+
+
+@dataclass(frozen=True)
+class TokenParameter:
+    """A model tensor that meets token values: the ``get_attr`` node ``attribute``, the ops ``shaping`` it on the way
+    (expand, casts: none moves its entries) and the :class:`Tokens` ``layout`` of the tokens it meets (its axes
+    aligned from the right with the tensor's)."""
+
+    attribute: fx.Node
+    shaping: tuple[fx.Node, ...]
+    layout: Tokens
+
+
+# -- from a patch grid to tokens ---------------------------------------------------------------------
+def tokens_from_grid(step: Step) -> Layout:
+    """``x.reshape(B, C, h·w)`` / ``x.flatten(2)`` of a (B, C, h, w) map: a (B, C, N) token value."""
+    in_shape, layout = shape(step.node.args[0]), step.layout
+    if not isinstance(layout, (Plain, Orbit)):
+        raise step.refuse(f"Flattening the grid of a {layout} value into tokens",
+                          f"flatten a channels-first patch map, {_STOP_BEFORE}")
+    height, width = in_shape[2], in_shape[3]
+    if height != width:
+        raise step.refuse(f"A {height}×{width} patch grid is not square, so a quarter turn does not permute it",
+                          f"use a square input whose side is a multiple of the patch size, {_STOP_BEFORE}")
+    return Tokens(layout, (0, 1, 2), height, width, 0)
+
+
+def permute(step: Step) -> Layout | None:
+    """``permute`` of a token value keeps its tokens; other values follow the channels-last rule."""
+    if not isinstance(step.layout, Tokens):
+        return channels_last_permute(step)
+    dims = step.node.kwargs.get("dims", step.node.args[1:])
+    if len(dims) == 1 and isinstance(dims[0], Sequence):
+        dims = dims[0]
+    return _reordered(step, tuple(dims))
+
+
+def movedim(step: Step) -> Layout | None:
+    """``movedim`` of a token value: refused (permute or transpose it); other values: the channels-last rule."""
+    if isinstance(step.layout, Tokens):
+        raise step.refuse("A movedim of a token sequence", f"use permute or transpose, {_STOP_BEFORE}")
+    return channels_last_movedim(step)
+
+
+def transpose(step: Step) -> Layout | None:
+    """``x.transpose(a, b)`` of a token value (B, C, N) ↔ (B, N, C)."""
+    layout = step.layout
+    if not isinstance(layout, Tokens):
+        raise step.refuse("A transpose of a value that is not a token sequence",
+                          f"use permute for channels-last maps, {_STOP_BEFORE}")
+    node = step.node
+    a, b = (node.args[1:3] if len(node.args) >= 3 else (node.kwargs.get("dim0"), node.kwargs.get("dim1")))
+    dims = [0, 1, 2]
+    if not isinstance(a, int) or not isinstance(b, int):
+        raise step.refuse("A transpose whose axes are not constant", f"transpose constant axes, {_STOP_BEFORE}")
+    dims[a % 3], dims[b % 3] = dims[b % 3], dims[a % 3]
+    return _reordered(step, tuple(dims))
+
+
+def _reordered(step: Step, dims: tuple) -> Tokens:
+    layout = step.layout
+    if len(dims) != 3 or not all(isinstance(d, int) for d in dims) or dims[0] % 3 != 0:
+        raise step.refuse(f"A permute {dims} of a token sequence that moves the batch axis or is not constant",
+                          f"keep the batch axis first, {_STOP_BEFORE}")
+    return replace(layout, dims=tuple(layout.dims[d % 3] for d in dims))
+
+
+def expand(step: Step) -> Layout | None:
+    """``expand`` of a model tensor (a class token over the batch) has no layout; of a value, refused."""
+    if step.layout is not None:
+        raise step.refuse("Expanding a value computed from the input", f"expand model tensors only, {_STOP_BEFORE}")
+    return None
+
+
+# -- class tokens and position embeddings ------------------------------------------------------------
+def concatenate_tokens(step: Step) -> Tokens:
+    """``torch.cat([class_token, tokens], dim=1)``: model tensors in front of one token value become fixed tokens.
+
+    Each tensor in front is tied to be the same on every slot of an orbit (per token). A tensor after the
+    grid, two token values, or a concatenation along another axis than the tokens is refused.
+    """
+    node = step.node
+    parts = list(node.args[0])
+    layouts = [step.arg_layout(part) for part in parts]
+    values = [i for i, layout in enumerate(layouts) if layout is not None]
+    layout = layouts[values[0]]
+    rank = len(shape(node) or ())
+    dim = node.kwargs.get("dim", node.args[1] if len(node.args) > 1 else 0) % max(rank, 1)
+    if len(values) != 1 or not isinstance(layout, Tokens) or dim != layout.token_axis:
+        raise step.refuse("Only model tensors (a class token) can be concatenated to a token sequence, in front of "
+                          "it along the token axis", f"concatenate class or register tokens in front, {_STOP_BEFORE}")
+    if values[0] != len(parts) - 1:
+        raise step.refuse("Tokens concatenated after the patch grid", f"put fixed tokens in front, {_STOP_BEFORE}")
+    added = 0
+    for part in parts[:-1]:
+        count = shape(part)[dim]
+        _tie(step, part, Tokens(layout.inner, layout.dims, 0, 0, count))
+        added += count
+    return replace(layout, prefix=layout.prefix + added)
+
+
+def tie_token_operands(step: Step, layout: Tokens) -> None:
+    """Tie the model tensors that an elementwise op adds or multiplies into a token value of ``layout``.
+
+    A tensor that varies along the tokens and channels only (a position embedding, a per-channel scale)
+    is tied over the joint orbits of the token and channel permutations; one that varies along the batch
+    is refused; one of a single value passes.
+    """
+    out = shape(step.node)
+    for operand in step.node.args:
+        if not isinstance(operand, fx.Node) or step.arg_layout(operand) is not None or shape(operand) is None:
+            continue
+        operand_shape = tuple(shape(operand))
+        offset = len(out) - len(operand_shape)
+        varying = {offset + axis for axis, size in enumerate(operand_shape) if size > 1}
+        if not varying:
+            continue
+        if not varying <= {layout.channel_axis, layout.token_axis} or \
+                (layout.token_axis in varying and out[layout.token_axis] != operand_shape[layout.token_axis - offset]):
+            raise step.refuse(f"'{operand.name}' (shape {operand_shape}), a tensor not computed from the input, varies "
+                              "along an axis other than the tokens and channels",
+                              f"use a tensor of one value per token and channel, {_STOP_BEFORE}")
+        _tie(step, operand, layout)
+
+
+def _tie(step: Step, operand: fx.Node, layout: Tokens) -> None:
+    """Have the context tie the model tensor behind ``operand`` over the orbits of ``layout``'s action."""
+    node, shaping = operand, []
+    while node.op != "get_attr":
+        if node.op != "call_method" or node.target not in _PASSING or not isinstance(node.args[0], fx.Node):
+            raise step.refuse(f"'{operand.name}' meets a token sequence but is not a model parameter or buffer (or "
+                              "one expanded)", f"add a parameter of shape (1, N, C) or (1, 1, C), {_STOP_BEFORE}")
+        shaping.append(node)
+        node = node.args[0]   # the tensor; the other arguments are sizes, dtypes or devices
+    own = tuple(shape(node))
+    used = tuple(shape(operand))
+    if any(size != 1 and size != used[len(used) - len(own) + axis] for axis, size in enumerate(own)):
+        raise step.refuse(f"The tensor '{node.target}' (shape {own}) is reshaped on its way to the tokens",
+                          f"use a tensor shaped like the tokens it meets, {_STOP_BEFORE}")
+    step.ctx.tie_token_parameter(step, TokenParameter(node, tuple(shaping), layout))
+
+
+# -- reading tokens out ------------------------------------------------------------------------------
+def take_tokens(step: Step) -> Layout | None:
+    """``x[:, i]`` of a fixed token: a (B, C) value; ``x[:, p:]`` past the fixed tokens: the grid; other values
+    follow :func:`orbify.graph.channel_order.take_part`."""
+    layout = step.layout
+    if not isinstance(layout, Tokens) or isinstance(step.arg_layout(step.node.args[0]), Parts):
+        return take_part(step)
+    index = step.node.args[1]
+    whole = slice(None, None, None)
+    if layout.dims != (0, 2, 1) or not isinstance(index, tuple) or index[0] != whole or \
+            any(item not in (whole, Ellipsis) for item in index[2:]) or len(index) < 2:
+        raise step.refuse("Indexing a token sequence other than x[:, i] or x[:, p:]",
+                          f"take a class token or the patch tokens from a (B, N, C) sequence, {_STOP_BEFORE}")
+    taken = index[1]
+    if isinstance(taken, int) and taken % layout.tokens < layout.prefix:
+        return layout.inner
+    if isinstance(taken, slice) and taken.step in (None, 1) and taken.start == layout.prefix and taken.stop is None:
+        return replace(layout, prefix=0)
+    raise step.refuse(f"Taking tokens {taken} moves with the patch grid",
+                      f"take a fixed token (index below {layout.prefix}) or all patch tokens, {_STOP_BEFORE}")
+
+
+def token_mean(step: Step) -> Layout:
+    """``x.mean(dim=1)`` of a (B, N, C) sequence: a (B, C) value (the mean over all tokens is invariant); with
+    ``keepdim`` a (B, 1, C) sequence of one fixed token."""
+    layout, node = step.layout, step.node
+    dims = node.kwargs.get("dim", node.args[1] if len(node.args) > 1 else None)
+    dims = (dims,) if isinstance(dims, int) else tuple(dims or ())
+    if tuple(d % 3 for d in dims) != (layout.token_axis,):
+        raise step.refuse(f"A mean over dims {dims} of a token sequence", f"average over the tokens, {_STOP_BEFORE}")
+    keepdim = node.kwargs.get("keepdim", node.args[2] if len(node.args) > 2 else False)
+    if keepdim and layout.dims == (0, 2, 1):
+        return Tokens(layout.inner, layout.dims, 0, 0, 1)
+    return layout.inner   # (B, C) or, kept, (B, C, 1): a channel value, as a pooled map is
+
+
+# -- attention ---------------------------------------------------------------------------------------
+def attention(step: Step) -> Parts:
+    """``nn.MultiheadAttention`` as self-attention over a (B, N, C) sequence: tied by the context; its output is the
+    pair (attention output, weights), of which only the output may be used."""
+    node, layout = step.node, step.layout
+    query = node.args[0] if node.args else node.kwargs.get("query")
+    names = ("query", "key", "value")
+    inputs = [node.args[i] if len(node.args) > i else node.kwargs.get(name) for i, name in enumerate(names)]
+    if not isinstance(layout, Tokens) or layout.dims != (0, 2, 1) or any(item is not query for item in inputs):
+        raise step.refuse("Attention other than self-attention over a (B, N, C) token sequence",
+                          f"attend from the tokens to themselves, {_STOP_BEFORE}")
+    if any(node.kwargs.get(name) is not None for name in ("key_padding_mask", "attn_mask")):
+        raise step.refuse("Attention with a mask (the mask would have to move with the tokens)",
+                          f"attend without a mask, {_STOP_BEFORE}")
+    if any(user.target is operator.getitem and user.args[1] != 0 and user.users for user in node.users):
+        raise step.refuse("The attention weights are used", f"use the attention output only, {_STOP_BEFORE}")
+    out = step.ctx.convert_attention(step)
+    return Parts((out, None), ((0, out.size(step.ctx.group)), (0, 0)))
+
+
+TOKEN_MODULES = {nn.MultiheadAttention: attention}
+"""Module rules of this module, added to :data:`orbify.graph.rules.MODULE_RULES`."""
+TOKEN_FUNCTIONS = {torch.permute: permute, torch.movedim: movedim, torch.moveaxis: movedim, torch.transpose: transpose,
+                   operator.getitem: take_tokens}
+"""Function rules of this module, added to :data:`orbify.graph.rules.FUNCTION_RULES`."""
+TOKEN_METHODS = {"permute": permute, "movedim": movedim, "moveaxis": movedim, "transpose": transpose,
+                 "expand": expand}
+"""Tensor method rules of this module, added to :data:`orbify.graph.rules.METHOD_RULES`."""
