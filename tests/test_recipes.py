@@ -56,7 +56,14 @@ AT_RECIPE_SIZE = {"example", "orbify.example.model:build_example_cnn"}
 # The slowest cases, 4–10 s each on 2 cores (building the models and converting their large fully connected
 # layers dominate).
 SLOW = {"vgg11_bn", "vgg13_bn", "vgg16_bn", "vgg19_bn", "wide_resnet50_2", "alexnet", "fcn_resnet101",
-        "deeplabv3_resnet101"}
+        "deeplabv3_resnet101", "vit_b_16", "vit_b_32", "vit_l_16"}
+# Vision transformers fix their position embeddings to the image size they are built for (torchvision's
+# image_size argument, 224 by default, asserted in forward), so part (b) builds each at a 2×2 patch grid, the
+# smallest grid a quarter turn moves: side = 2 × patch. The head is drawn at random (torchvision starts it at
+# zero, which would make every output 0). vit_l_16 (24 layers, ~43 s in (b) on one core) keeps its widths, heads,
+# patch and MLP but 2 of its layers: every op of the deep model is in the shallow one.
+VIT_GRID_SIDE = {"vit_b_16": 32, "vit_b_32": 64, "vit_l_16": 32}
+VIT_LAYERS = {"vit_l_16": 2}
 
 CASES = [(recipe.name, architecture) for recipe in list_recipes() for architecture in recipe.architectures]
 
@@ -100,10 +107,28 @@ def invariance_error(model, group, x, dtype=torch.float64, head="invariant") -> 
     return max(errors)
 
 
+def vit_at(architecture: str, side: int):
+    """torchvision's ``architecture`` built for ``side``-pixel images (fewer layers where VIT_LAYERS says), head drawn."""
+    builder = torchvision.models.get_model_builder(architecture)
+    if architecture in VIT_LAYERS:
+        with torch.device("meta"):   # the full model's widths, without computing its weights
+            full = builder(image_size=side)
+        model = torchvision.models.VisionTransformer(side, full.patch_size, VIT_LAYERS[architecture],
+                                                     full.encoder.layers[0].num_heads, full.hidden_dim, full.mlp_dim)
+    else:
+        model = builder(image_size=side)
+    with torch.no_grad():
+        model.heads.head.weight.normal_(0, 0.02)
+    return model.eval()
+
+
 def test_every_shipped_architecture_has_a_small_safe_size():
     # keeps CASES honest: a new recipe must say how its architectures are checked
     torchvision_names = {a for _, a in CASES if ":" not in a and a != "example"}
-    assert torchvision_names <= set(SMALL_SAFE)
+    assert torchvision_names <= set(SMALL_SAFE) | set(VIT_GRID_SIDE)
+    for architecture, side in VIT_GRID_SIDE.items():   # a 2×2 patch grid
+        with torch.device("meta"):
+            assert side == 2 * torchvision.models.get_model(architecture, image_size=side).patch_size
     assert len(list_recipes()) >= 10
 
 
@@ -118,7 +143,10 @@ def test_recipe_converts_its_architecture_invariantly(recipe_name, architecture)
     recipe.check_input_size(original)                                       # (a)
     options = recipe.convert_options()
     size = options.pop("input_size")
-    if architecture not in AT_RECIPE_SIZE:
+    if architecture in VIT_GRID_SIDE:
+        size = VIT_GRID_SIDE[architecture]
+        original = vit_at(architecture, size)
+    elif architecture not in AT_RECIPE_SIZE:
         size = SMALL_SAFE[architecture]
         published_minimum = torchvision.models.get_model_weights(architecture).DEFAULT.meta["min_size"][0]
         assert smallest_safe_size(original, max(2, published_minimum), size) == size, architecture
@@ -162,7 +190,7 @@ def test_find_recipe_for_known_architectures(architecture):
 
 
 def test_find_recipe_for_unknown_architecture_is_none():
-    assert find_recipe_for("vit_b_16") is None
+    assert find_recipe_for("swin_t") is None   # windowed attention: refused, no recipe
     assert find_recipe_for("mypackage.models:build") is None
 
 

@@ -15,7 +15,7 @@ import torchvision
 from torch import nn
 
 import orbify
-from orbify.errors import WidthError
+from orbify.errors import UnsupportedOpError, WidthError
 from orbify.symmetry.groups import parse_group
 from orbify.symmetry.layouts import Orbit, Plain, Tokens, act
 
@@ -224,3 +224,122 @@ def test_torchvision_vit_converts_exactly_at_224(vit_b_32_c4):
     attention = [layer for layer in plan.layers if layer.op == "MultiheadAttention"]
     assert len(attention) == 12 and all(str(layer.layout_out) == "tokens(orbit(192), 1+7×7, 0,2,1)"
                                         for layer in attention)
+
+
+# -- baking and export ---------------------------------------------------------------------------------------
+@pytest.fixture(scope="module")
+def tiny_d4():
+    model = tiny_vit()
+    converted, _ = orbify.convert(model, "d4", example_input=torch.zeros(1, 3, 16, 16))
+    return converted
+
+
+def test_tied_attention_bakes_to_plain_multihead_attention(tiny_d4):
+    baked = orbify.bake_model(tiny_d4)
+    attention = baked.get_submodule("blocks.0.attention")
+    assert type(attention) is nn.MultiheadAttention   # torch's own class, no parametrization left
+    assert not any(torch.nn.utils.parametrize.is_parametrized(m) for m in baked.modules())
+    tied = tiny_d4.get_submodule("blocks.0.attention")
+    assert torch.equal(attention.in_proj_weight, tied.in_proj_weight)   # the expanded tied rows, kept
+    x = torch.randn(2, 3, 16, 16)
+    with torch.no_grad():
+        assert torch.equal(baked(x), tiny_d4(x))
+
+
+@pytest.mark.parametrize("format", ["pt2", "torchscript", "onnx"])
+def test_exported_tiny_vit_matches_and_stays_invariant(tiny_d4, tmp_path, format):
+    from orbify.files.export import output_difference, run_exported
+
+    path = orbify.export_model(tiny_d4, torch.zeros(1, 3, 16, 16), tmp_path / f"vit.{format}", format)
+    group = parse_group("d4")
+    x = torch.randn(3, 3, 16, 16)   # exported at batch 1, run at batch 3
+    with torch.no_grad():
+        expected = tiny_d4(x)
+    # each file in its own runtime: torch.export.load, torch.jit.load, onnxruntime
+    exported = run_exported(path, format, x)
+    assert output_difference(exported, expected) < 1e-5
+    for g in range(1, group.order):   # torch.rot90 / torch.flip as the reference motion
+        assert output_difference(run_exported(path, format, moved_images(group, g, x)), exported) < 1e-5
+
+
+def test_cli_exports_a_saved_vit(tiny_d4, tmp_path, capsys):
+    from orbify.cli import main
+    from orbify.files.export import output_difference, run_exported
+
+    plan = orbify.convert(tiny_vit(), "d4", example_input=torch.zeros(1, 3, 16, 16))[1]
+    saved = orbify.save(tiny_d4, plan, tmp_path / "vit.orb", reference="test_vision_transformers:tiny_vit")
+    output = tmp_path / "vit.pt"
+    with pytest.raises(SystemExit) as exit_info:
+        main(["export", str(saved), "--format", "torchscript", "-o", str(output), "--trust-source"])
+    assert exit_info.value.code == 0
+    assert "3×16×16" in capsys.readouterr().out   # the recorded input size
+    x = torch.randn(2, 3, 16, 16)
+    with torch.no_grad():
+        assert output_difference(run_exported(output, "torchscript", x), tiny_d4(x)) < 1e-5
+
+
+# -- safe sizes ----------------------------------------------------------------------------------------------
+class MeanTokenViT(nn.Module):
+    """Patch 4, one block, no position embeddings: runs at any size whose side is a multiple of 4, mean over tokens."""
+
+    def __init__(self, width: int = 16):
+        super().__init__()
+        self.patches = nn.Conv2d(3, width, 4, stride=4)
+        self.block = Block(width, 2)
+        self.head = nn.Linear(width, 3)
+
+    def forward(self, x):
+        return self.head(self.block(self.patches(x).flatten(2).transpose(1, 2)).mean(1))
+
+
+def test_safe_sizes_of_a_patch_grid_are_multiples_of_the_patch():
+    from orbify.graph.sizes import SizeChecker
+
+    checker = SizeChecker(MeanTokenViT().eval())
+    # the stride rule (H − kernel) divisible by the stride, for kernel = stride = 4: H a multiple of 4 (arithmetic)
+    expected = sorted((s for s in range(15, 46) if (s - 4) % 4 == 0), key=lambda s: (abs(s - 30), s))[:4]
+    assert checker.safe_sizes(30, 4) == expected == [28, 32, 24, 36]
+    assert not checker.is_safe(30)
+
+
+def test_a_vit_fixed_to_one_size_is_offered_that_size_only(capsys):
+    from orbify.cli import main
+    from orbify.errors import InputShapeError
+    from orbify.graph.sizes import SizeChecker
+
+    checker = SizeChecker(tiny_vit())   # learned position embeddings for a 4×4 grid
+    assert checker.safe_sizes(20, 5) == [16]
+    with pytest.raises(InputShapeError) as error:
+        checker.violations(20)
+    assert "'positions' (shape (1, 17, 32))" in str(error.value) and "one input size only" in str(error.value)
+    # torchvision's ViT asserts its image size: 224 = 14 patches of 16 only
+    with pytest.raises(SystemExit) as exit_info:
+        main(["sizes", "torchvision:vit_b_16", "--near", "240", "--count", "3"])
+    assert exit_info.value.code == 0
+    printed = " ".join(capsys.readouterr().out.split())
+    assert "240 is not safe" in printed and "checks its input size itself" in printed
+    assert "│ 224 │ -16 │" in printed and "│ 256" not in printed and "│ 208" not in printed
+
+
+# -- windowed attention ----------------------------------------------------------------------------------------
+@pytest.mark.parametrize("name,stops_at,inside", [("swin_t", "_get_relative_position_bias", "ShiftedWindowAttention"),
+                                                  ("maxvit_t", "reshape_1", "PartitionAttentionLayer")])
+def test_windowed_attention_is_refused_saying_why(name, stops_at, inside):
+    from orbify.graph.tokens import windowed_attention_refusal
+    from orbify.graph.tracing import trace
+
+    graph = trace(getattr(torchvision.models, name)().eval()).graph
+    node = next(node for node in graph.nodes if node.name == stops_at)   # where conversion stops without the rule
+    text = str(windowed_attention_refusal(node))
+    assert f"({inside})" in text and f"graph node '{stops_at}'" in text
+    assert "does not just permute the tokens" in text and "--stop-at" in text
+    plain = trace(tiny_vit()).graph   # global attention over the grid is not windowed
+    assert all(windowed_attention_refusal(node) is None for node in plain.nodes)
+
+
+@pytest.mark.parametrize("name", ["swin_t", "maxvit_t"])
+def test_converting_windowed_attention_is_refused_saying_why(name):
+    model = torchvision.models.get_model(name).eval()          # torchvision's definitions, random weights
+    with pytest.raises(UnsupportedOpError, match="Windowed attention") as refused:
+        orbify.convert(model, "c4", example_input=torch.zeros(1, 3, 224, 224))
+    assert "graph node" in str(refused.value) and "window" in str(refused.value)

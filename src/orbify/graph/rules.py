@@ -39,6 +39,7 @@ from orbify.graph.tokens import (
     tie_token_operands,
     token_mean,
     tokens_from_grid,
+    windowed_attention_refusal,
 )
 from orbify.graph.tracing import describe, shape
 from orbify.symmetry.groups import Group
@@ -60,6 +61,9 @@ class Step:
         return self.ctx.layouts.get(arg) if isinstance(arg, fx.Node) else None
 
     def refuse(self, what: str, fix: str) -> UnsupportedOpError:
+        refusal = windowed_attention_refusal(self.node)   # a clearer reason than the op's own
+        if refusal is not None:
+            return refusal
         seen = ", ".join(str(layout) for layout in self.inputs if layout is not None) or "none"
         return UnsupportedOpError(f"{what} (input layouts: {seen})", where=describe(self.node), fix=fix)
 

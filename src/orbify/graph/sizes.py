@@ -16,6 +16,8 @@ probed on one random channel of its input size (:func:`resampling_break`). When 
 from __future__ import annotations
 
 import copy
+import functools
+import operator
 from dataclasses import dataclass
 from typing import Callable, Union
 
@@ -238,7 +240,8 @@ class SizeChecker:
         except _FirstViolation:
             pass
         except Exception as error:
-            raise input_error(self.gm, shape, error) from error
+            fixed = fixed_size_error(checker.current, (h, w)) if checker.current is not None else None
+            raise (fixed or input_error(self.gm, shape, error)) from error
         return checker.violations
 
     def probe(self, size: int, resampling: bool = True) -> SizeProbe:
@@ -288,6 +291,45 @@ class SizeChecker:
                 if len(found) == count:
                     break
         return found
+
+
+_FIXED_SIZE_FIX = ("convert at the size the model was built for; for another size build the model for it (torchvision's "
+                   "ViTs take image_size=S, S a multiple of the patch size) or use one that interpolates its position "
+                   "embeddings")
+
+
+_COMBINING = {operator.add, torch.add, torch.cat, torch.concat, "add", "add_"}
+"""Ops that combine a model tensor with the values: where fixed position embeddings meet tokens of another count."""
+
+
+def fixed_size_error(node: fx.Node, size: tuple[int, int]) -> InputShapeError | None:
+    """Why an input of ``size`` stops at ``node`` when the model is fixed to one input size, or None.
+
+    Two ways a model (a vision transformer) is fixed to one size: it asserts its input size itself
+    (``torch._assert``, as torchvision's ViT does), or it adds or concatenates a model tensor with a token count
+    of its own (learned position embeddings) to a sequence whose token count follows the input size.
+    """
+    side = f"{size[0]}×{size[1]}"
+    if node.op == "call_function" and node.target is torch._assert:
+        return InputShapeError(f"The model checks its input size itself and refuses {side}: it runs at one input size "
+                               "only (a vision transformer whose position embeddings are fixed to one patch grid), so "
+                               "no other size is offered", where=describe(node), fix=_FIXED_SIZE_FIX)
+    tensors = [_model_tensor(arg) for arg in node.all_input_nodes]
+    held = [tensor for tensor in tensors if tensor is not None]
+    if node.target in _COMBINING and held and len(tensors) > 1:
+        value = functools.reduce(getattr, held[0].target.split("."), node.graph.owning_module)
+        return InputShapeError(f"At {side} the model meets its tensor '{held[0].target}' (shape {tuple(value.shape)}) "
+                               "with values whose shape follows the input size: it runs at one input size only "
+                               "(position embeddings fixed to one patch grid), so no other size is offered",
+                               where=describe(node), fix=_FIXED_SIZE_FIX)
+    return None
+
+
+def _model_tensor(node: fx.Node) -> fx.Node | None:
+    """The ``get_attr`` node behind ``node`` through expand/contiguous/casts, or None."""
+    while node.op == "call_method" and node.target in ("expand", "contiguous", "to", "float") and node.args:
+        node = node.args[0]
+    return node if node.op == "get_attr" else None
 
 
 def safe_sizes(model: nn.Module, near: int, count: int = 5, channels: int = 3) -> list[int]:

@@ -32,10 +32,11 @@ from typing import TYPE_CHECKING
 import torch
 from torch import fx, nn
 
+from orbify.errors import UnsupportedOpError
 from orbify.graph.channel_order import Parts, take_part
 from orbify.graph.channels_last import movedim as channels_last_movedim
 from orbify.graph.channels_last import permute as channels_last_permute
-from orbify.graph.tracing import shape
+from orbify.graph.tracing import describe, shape
 from orbify.symmetry.layouts import Layout, Orbit, Plain, Tokens
 
 if TYPE_CHECKING:
@@ -240,6 +241,47 @@ def attention(step: Step) -> Parts:
         raise step.refuse("The attention weights are used", f"use the attention output only, {_STOP_BEFORE}")
     out = step.ctx.convert_attention(step)
     return Parts((out, None), ((0, out.size(step.ctx.group)), (0, 0)))
+
+
+# -- windowed attention -----------------------------------------------------------------------------
+WINDOWED_ATTENTION = {
+    "torchvision.models.swin_transformer": {"ShiftedWindowAttention", "ShiftedWindowAttentionV2",
+                                            "shifted_window_attention", "_get_relative_position_bias"},
+    "torchvision.models.maxvit": {"PartitionAttentionLayer", "WindowPartition", "WindowDepartition",
+                                  "RelativePositionalMultiHeadAttention"},
+    "timm.models.swin_transformer": {"WindowAttention", "SwinTransformerBlock"},
+    "timm.models.swin_transformer_v2": {"WindowAttention", "SwinTransformerV2Block"},
+    "timm.models.maxxvit": {"PartitionAttentionCl", "PartitionAttention2d", "ParallelPartitionAttention"},
+}
+"""Modules and functions of windowed attention (Swin's shifted windows, MaxViT's block and grid partitions), by the
+module that defines them and their name: recognised without importing the libraries."""
+
+_WINDOWS_WHY = ("it attends within windows laid out from the patch grid's top-left corner (Swin shifts them by half a "
+                "window on alternate blocks) and adds a learned bias for each direction between two tokens of a "
+                "window, so a quarter turn or a mirror moves windows and directions onto ones the model treats "
+                "differently: it does not just permute the tokens")
+
+
+def windowed_attention_refusal(node: fx.Node) -> UnsupportedOpError | None:
+    """The refusal for a node inside windowed attention (:data:`WINDOWED_ATTENTION`), saying why; None elsewhere.
+
+    The node is recognised by its own target (a function of such a module, or a module kept whole) or by the
+    modules it was traced inside (``node.meta["nn_module_stack"]``, recorded by ``torch.fx``).
+    """
+    stack = node.meta.get("nn_module_stack") or {}
+    inside = next((f"'{path}' ({cls.__name__})" for path, cls in stack.values() if _windowed(cls)), None)
+    if inside is None and _windowed(node.target):
+        inside = getattr(node.target, "__name__", str(node.target))
+    if inside is None:
+        return None
+    return UnsupportedOpError(f"Windowed attention ({inside}) cannot be made exactly invariant: {_WINDOWS_WHY}",
+                              where=describe(node),
+                              fix="use a vision transformer with global attention over a square patch grid (e.g. "
+                                  f"torchvision's vit_b_16) or a CNN, {_STOP_BEFORE} (e.g. the patch embedding)")
+
+
+def _windowed(target: object) -> bool:
+    return getattr(target, "__name__", None) in WINDOWED_ATTENTION.get(getattr(target, "__module__", None), ())
 
 
 TOKEN_MODULES = {nn.MultiheadAttention: attention}
