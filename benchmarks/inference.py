@@ -95,13 +95,16 @@ def main(
     rounds: int = typer.Option(0, "--rounds", help="Timed rounds (0: 5, or 3 with --quick)."),
     models: str = typer.Option("", "--models", help="Comma-separated torchvision names instead of the default ones."),
     batch_sizes: str = typer.Option("", "--batches", help="Comma-separated batch sizes instead of the default ones."),
+    size_option: int = typer.Option(0, "--size", help="Input side instead of the default (65 with --quick, else 225); "
+                                                      "224 for vision transformers (a multiple of the patch)."),
+    group_names: str = typer.Option("", "--groups", help="Comma-separated groups instead of the default ones."),
 ) -> None:
     """Time inference of original, converted (cached and baked) and group-averaged models; print the tables."""
     harness.fix_threads()
     names = models.split(",") if models else ["resnet18"] if quick else ["resnet18", "mobilenet_v2"]
-    size = 65 if quick else 225
+    size = size_option or (65 if quick else 225)
     batches = [int(b) for b in batch_sizes.split(",")] if batch_sizes else [1, 4] if quick else [1, 16]
-    groups = ["d4"] if quick else ["c4", "d4"]
+    groups = group_names.split(",") if group_names else ["d4"] if quick else ["c4", "d4"]
     rounds = rounds or (3 if quick else 5)
     calls_at_1 = 1 if quick else CALLS_AT_BATCH_1
     harness.print_header("Inference (eval mode, no gradients, CPU)", {

@@ -214,3 +214,58 @@ def test_digits_experiment_quick(run_quick, tmp_path):
         assert mine[tuned[0]]["accuracy_every_element"] > start + 0.2, (start, mine[tuned[0]])
         assert f"### {name}: rotated test set ({len(mine)} models)" in output
         assert "against best TTA" in output
+
+
+def test_coverage_quick(run_quick, tmp_path):
+    timm = pytest.importorskip("timm")
+    page_path = tmp_path / "coverage.md"
+    output = run_quick("coverage.py", "--out", str(page_path))
+    page = page_path.read_text()
+    assert page.strip() == output.strip()                   # the page is what the script prints
+    published = {name: torchvision.models.get_model_weights(name).DEFAULT.meta["num_params"]   # read, not downloaded
+                 for name in ("shufflenet_v2_x0_5", "lraspp_mobilenet_v3_large")}
+    for name, kind in (("shufflenet_v2_x0_5", "classification"), ("lraspp_mobilenet_v3_large", "segmentation")):
+        table = {row[3]: row for row in rows(page, name)}
+        assert set(table) == {"c4", "d4"}, table
+        for group, row in table.items():
+            _, source, row_set, _, size, before, after, error, convert_s, row_s, result = row
+            assert (source, row_set, result) == ("torchvision", kind, "exact"), row
+            assert size.startswith("33 ")                    # safe: 33 → 17 → 9 → 5 → 3 at stride 2
+            assert int(before.replace(",", "")) == published[name]   # torchvision's weights metadata num_params
+            order = parse_group(group).order                # the channels budget stores about 1/|G| of the numbers
+            assert 1 / order <= int(after.replace(",", "")) / published[name] < 1 / order + 0.02, row
+            assert float(error) <= 1e-5 and 0 < float(convert_s) <= float(row_s)
+    # timm's resnet10t: a 3×3 stride-2 conv beside a 2×2 stride-2 average pool in the shortcut, exact on sides of
+    # opposite parity (docs/design.md §6); the row says that no size is exact, and its error shows it
+    for row in rows(page, "resnet10t"):
+        assert row[1:3] == ["timm", "CNN"] and float(row[7]) > 1e-5, row
+        assert row[10].startswith("not exact: no safe input size") and "conflict" in row[10], row
+        # the parameter count of timm's own model definition
+        assert int(row[5].replace(",", "")) == sum(p.numel() for p in timm.create_model("resnet10t").parameters())
+    summary = {(row[1], row[2]): row[3:] for row in rows(page, "torchvision") + rows(page, "timm") if len(row) == 8}
+    assert summary[("classification", "c4")] == summary[("segmentation", "d4")] == ["1", "1", "0", "0", "0"]
+    assert summary[("CNN", "d4")] == ["1", "0", "1", "0", "0"]
+    assert "timm CNN families converted exactly under c4 and d4: 0 of 1 (0 %)" in page
+    # left out: the family of every timm name whose first word is 'vit' (timm's own registry lookup)
+    assert rows(page, "vit")[0][1:] == [str(len(timm.list_models("vit_*"))), "transformer: Attention"]
+    with pytest.raises(SystemExit, match="already exists"):   # refused before any work without --force
+        run_quick("coverage.py", "--out", str(page_path))
+    assert page_path.read_text() == page
+
+
+def test_coverage_rows_of_killed_and_refused_models(run_quick, tmp_path):
+    from orbify.errors import UnsupportedOpError
+
+    output = run_quick("coverage.py", "--out", str(tmp_path / "coverage.md"), "--timeout", "0.01", "--groups", "c4")
+    results = [row[10] for name in ("shufflenet_v2_x0_5", "lraspp_mobilenet_v3_large", "resnet10t")
+               for row in rows(output, name)]
+    assert results == ["failed: timed out after 0.01 s (--timeout)"] * 3
+    coverage = load_script("coverage")
+    error = UnsupportedOpError("Cutting channels 0:12 of a orbit(4) value. It splits an orbit",
+                               where='graph node \'getitem\' at File "/venv/lib/site-packages/timm/models/x.py", line 7',
+                               fix="use widths divisible by 4")
+    assert coverage.refusal(error) == ("Cutting channels 0:12 of a orbit(4) value. Where: graph node 'getitem' at "
+                                       'File "timm/models/x.py", line 7')
+    assert [coverage.timm_family(name) for name in ("resnet50d", "mobilenetv3_large_100", "cs3darknet_s",
+                                                    "tf_efficientnet_b0", "res2net50_14w_8s", "inception_v3")] == \
+        ["resnet", "mobilenetv3", "cs3darknet", "tf_efficientnet", "res2net", "inception_v3"]

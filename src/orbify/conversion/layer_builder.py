@@ -18,6 +18,7 @@ from orbify.graph.plan import orbits_for
 from orbify.graph.rules import CONVERT_UP_TO, ConversionContext, Step
 from orbify.graph.tracing import describe, shape
 from orbify.layers.tied import OrbitBatchNorm, conv_fibre, tie_attention, tie_conv, tie_linear
+from orbify.symmetry.groups import Group
 from orbify.symmetry.layouts import Flat, Layout, Orbit, Permuted, Plain, Tokens
 from orbify.transfer.channels import ChannelMap, rows
 from orbify.transfer.kinds import is_depthwise
@@ -153,6 +154,7 @@ class LayerBuilder:
         group = self.state.group
         if not isinstance(lin, (Plain, Orbit)):
             raise step.refuse("A conv reads a flattened tensor", CONVERT_UP_TO)
+        _require_square_geometry(step, old, group)
         notes: list[str] = []
         if is_depthwise(old):
             lout, groups = lin, lin.size(group)
@@ -188,6 +190,18 @@ class LayerBuilder:
                 notes.append(f"merged {groups} conv groups into {candidate} so each holds whole orbits")
             return candidate
         raise step.refuse("No grouping of this conv keeps whole orbits", "use a group whose order divides the widths")
+
+
+def _require_square_geometry(step: Step, old: nn.Module, group: Group) -> None:
+    """A group that turns by a quarter (or less) swaps the two axes, so a conv must act alike on both: refuse a
+    1×7 kernel (or different strides, paddings, dilations per axis) under it."""
+    swaps = not group.exact or any(group.quarter_turns(g) % 2 for g in range(group.order))
+    sides = {name: getattr(old, name) for name in ("kernel_size", "stride", "padding", "dilation")}
+    uneven = {name: value for name, value in sides.items() if isinstance(value, tuple) and len(set(value)) > 1}
+    if swaps and uneven:
+        described = ", ".join(f"{name} {value}" for name, value in uneven.items())
+        raise step.refuse(f"A conv with {described} differs between the axes, which a quarter turn swaps",
+                          f"convert under a group without quarter turns (c2 or d2), or {CONVERT_UP_TO}")
 
 
 def _conv_geometry(old: nn.Module, groups: int) -> dict:
