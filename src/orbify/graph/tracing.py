@@ -94,6 +94,10 @@ def _failing_node(gm: fx.GraphModule, error: Exception) -> fx.Node | None:
 
 
 def _first_line(error: Exception) -> str:
+    """The first line of the error's message; of the error it wraps when torch's shape propagation wrapped it (its
+    wrapper repeats the node's metadata, stack traces included)."""
+    if str(error).startswith("ShapeProp error") and error.__cause__ is not None:
+        error = error.__cause__
     text = str(error).strip().splitlines()
     return text[0] if text else type(error).__name__
 
