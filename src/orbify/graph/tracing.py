@@ -2,7 +2,9 @@
 
 from __future__ import annotations
 
+import contextlib
 import copy
+import io
 import re
 import traceback
 from collections.abc import Iterable
@@ -65,8 +67,8 @@ def trace(model: nn.Module, example_input: torch.Tensor | None = None,
 
 def propagate_shapes(gm: fx.GraphModule, example_input: torch.Tensor) -> None:
     """Run ``example_input`` through ``gm`` (eval, no grad) and store each node's tensor metadata."""
-    try:
-        with module_mode(gm, training=False), torch.no_grad():
+    try:   # torch's ShapeProp prints the traceback of a failing node itself: keep it off the terminal
+        with module_mode(gm, training=False), torch.no_grad(), contextlib.redirect_stderr(io.StringIO()):
             ShapeProp(gm).propagate(example_input)
     except Exception as error:
         raise input_error(gm, tuple(example_input.shape), error) from error
