@@ -60,10 +60,10 @@ SLOW = {"vgg11_bn", "vgg13_bn", "vgg16_bn", "vgg19_bn", "wide_resnet50_2", "alex
 # Vision transformers fix their position embeddings to the image size they are built for (torchvision's
 # image_size argument, 224 by default, asserted in forward), so part (b) builds each at a 2×2 patch grid, the
 # smallest grid a quarter turn moves: side = 2 × patch. The head is drawn at random (torchvision starts it at
-# zero, which would make every output 0). vit_l_16 (24 layers, ~43 s in (b) on one core) keeps its widths, heads,
-# patch and MLP but 2 of its layers: every op of the deep model is in the shallow one.
+# zero, which would make every output 0). Each keeps its widths, heads, patch and MLP but 2 of its layers (12 or
+# 24; vit_l_16 whole took ~43 s in (b) on one core): every op of the deep model is in the shallow one.
 VIT_GRID_SIDE = {"vit_b_16": 32, "vit_b_32": 64, "vit_l_16": 32}
-VIT_LAYERS = {"vit_l_16": 2}
+VIT_LAYERS = {"vit_b_16": 2, "vit_b_32": 2, "vit_l_16": 2}
 
 CASES = [(recipe.name, architecture) for recipe in list_recipes() for architecture in recipe.architectures]
 
