@@ -1,12 +1,14 @@
-"""The bundled example: micrograph tiles, a plain CNN trained on upright ones, and its weights.
+"""The bundled examples: micrograph tiles and scenes, plain models trained on upright ones, and their weights.
 
-``load_example_model()`` returns the trained CNN; ``make_tiles`` draws fresh tiles, upright
-(like the training set) or at any angle (the field).
+``load_example_model()`` returns the trained tile classifier; ``make_tiles`` draws fresh tiles,
+upright (like the training set) or at any angle (the field). ``load_example_segmenter()`` returns the
+trained segmentation model; ``make_scenes`` draws scenes of several particles with their masks.
 """
 
 from __future__ import annotations
 
 from importlib import resources
+from typing import Callable
 
 from torch import nn
 
@@ -14,11 +16,18 @@ from orbify.common.safe_io import load_torch_weights
 from orbify.errors import CheckpointError
 from orbify.example.data import CLASS_NAMES, make_tiles
 from orbify.example.model import build_example_cnn
+from orbify.example.scenes import SEGMENT_CLASSES, make_scenes
+from orbify.example.segment_model import build_example_segmenter
 
-__all__ = ["CLASS_NAMES", "WEIGHTS_FILE", "build_example_cnn", "load_example_model", "make_tiles"]
+__all__ = [
+    "CLASS_NAMES", "SEGMENT_CLASSES", "SEGMENT_WEIGHTS_FILE", "WEIGHTS_FILE", "build_example_cnn",
+    "build_example_segmenter", "load_example_model", "load_example_segmenter", "make_scenes", "make_tiles",
+]
 
 WEIGHTS_FILE = "weights.pt"
-"""Name of the shipped state dict inside the ``orbify.example`` package."""
+"""Name of the shipped state dict of the tile classifier inside the ``orbify.example`` package."""
+SEGMENT_WEIGHTS_FILE = "segment_weights.pt"
+"""Name of the shipped state dict of the segmentation model inside the ``orbify.example`` package."""
 
 
 def load_example_model() -> nn.Module:
@@ -28,14 +37,29 @@ def load_example_model() -> nn.Module:
     ``torch.load(weights_only=True)`` and loaded with strict key matching. Raises
     :class:`orbify.errors.CheckpointError` when the file is missing, damaged or does not fit.
     """
-    with resources.as_file(resources.files(__package__) / WEIGHTS_FILE) as path:
-        state = load_torch_weights(path, what="example weights file")
-        model = build_example_cnn()
+    return _load_shipped(WEIGHTS_FILE, build_example_cnn, "the example CNN", "orbify.example.train")
+
+
+def load_example_segmenter() -> nn.Module:
+    """The example segmentation model with the shipped weights, in eval mode.
+
+    Read like :func:`load_example_model`, from ``orbify/example/segment_weights.pt``; raises
+    :class:`orbify.errors.CheckpointError` when the file is missing, damaged or does not fit.
+    """
+    return _load_shipped(SEGMENT_WEIGHTS_FILE, build_example_segmenter, "the example segmenter",
+                         "orbify.example.train_segment")
+
+
+def _load_shipped(file: str, build: Callable[[], nn.Module], what: str, trainer: str) -> nn.Module:
+    """``build()`` with the package file ``file`` loaded strictly (``weights_only=True``), in eval mode."""
+    with resources.as_file(resources.files(__package__) / file) as path:
+        state = load_torch_weights(path, what=f"weights file of {what}")
+        model = build()
         try:
             model.load_state_dict(state, strict=True)
         except (RuntimeError, TypeError, AttributeError) as error:
             raise CheckpointError(
-                f"The example weights file {str(path)!r} does not fit the example CNN ({error})",
-                fix="regenerate it: python -m orbify.example.train --out <that file> --force",
+                f"The weights file {str(path)!r} does not fit {what} ({error})",
+                fix=f"regenerate it: python -m {trainer} --out <that file> --force",
             ) from error
     return model.eval()

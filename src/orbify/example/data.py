@@ -14,6 +14,7 @@ another, so every label stays correct at every orientation.
 
 from __future__ import annotations
 
+from dataclasses import dataclass
 from typing import Callable, Literal
 
 import numpy as np
@@ -95,31 +96,22 @@ _OUTLINES: tuple[Callable[[np.ndarray, np.ndarray], np.ndarray], ...] = (
 )
 
 
-def _check_arguments(n: int, split: str, size: int, seed: int) -> None:
+def check_draw_arguments(function: str, n: int, split: str, size: int, seed: int) -> None:
+    """Raise :class:`OptionError` naming ``function`` (e.g. ``"make_tiles"``) for an unknown split, a negative
+    count or seed, or a size below 9 pixels."""
+    where = f"orbify.example.{function}"
     if split not in SPLITS:
-        raise OptionError(
-            f"unknown tile split {split!r}",
-            where="orbify.example.data.make_tiles(split=...)",
-            fix=f"use one of {', '.join(SPLITS)}",
-        )
+        raise OptionError(f"unknown split {split!r}", where=f"{where}(split=...)",
+                          fix=f"use one of {', '.join(SPLITS)}")
     if not isinstance(n, int) or n < 0:
-        raise OptionError(
-            f"tile count must be a non-negative integer, got {n!r}",
-            where="orbify.example.data.make_tiles(n)",
-            fix="pass n >= 0",
-        )
+        raise OptionError(f"the count must be a non-negative integer, got {n!r}", where=f"{where}(n)",
+                          fix="pass n >= 0")
     if not isinstance(seed, int) or seed < 0:
-        raise OptionError(
-            f"seed must be a non-negative integer, got {seed!r}",
-            where="orbify.example.data.make_tiles(seed=...)",
-            fix="pass seed >= 0",
-        )
+        raise OptionError(f"seed must be a non-negative integer, got {seed!r}", where=f"{where}(seed=...)",
+                          fix="pass seed >= 0")
     if not isinstance(size, int) or size < _MIN_SIZE:
-        raise OptionError(
-            f"tile size must be an integer of at least {_MIN_SIZE} pixels, got {size!r}",
-            where="orbify.example.data.make_tiles(size=...)",
-            fix=f"use the default {DEFAULT_SIZE} or another odd size such as 65",
-        )
+        raise OptionError(f"the size must be an integer of at least {_MIN_SIZE} pixels, got {size!r}",
+                          where=f"{where}(size=...)", fix="use an odd size such as 33, 49 or 65")
 
 
 def _particle_angles(rng: np.random.Generator, n: int, split: str) -> tuple[np.ndarray, np.ndarray]:
@@ -140,17 +132,36 @@ def _blotches(rng: np.random.Generator, n: int, size: int) -> np.ndarray:
     return smooth[:, 0].numpy() / 2.0
 
 
-def _render(rng: np.random.Generator, labels: np.ndarray, split: str, size: int) -> np.ndarray:
-    """Draw tiles with values in [0, 1], shape (n, 3, size, size)."""
-    n = labels.shape[0]
-    unit = size / DEFAULT_SIZE
-    centre = (size - 1) / 2.0
-    x = np.arange(size, dtype=np.float64) - centre
-    grid_x, grid_y = np.meshgrid(x, -x)  # y up, so counter-clockwise angles look counter-clockwise
+def pixel_grid(size: int) -> tuple[np.ndarray, np.ndarray]:
+    """Pixel coordinates (x, y), each (size, size), about the image centre, y up (so counter-clockwise angles look
+    counter-clockwise)."""
+    x = np.arange(size, dtype=np.float64) - (size - 1) / 2.0
+    grid_x, grid_y = np.meshgrid(x, -x)
+    return grid_x, grid_y
 
+
+Placement = Callable[[np.random.Generator, int], np.ndarray]
+"""``place(rng, n)``: the (n, 2) centres (x, y; pixels from the image centre, y up) of ``n`` particles."""
+
+
+@dataclass(frozen=True)
+class Particles:
+    """Particles drawn on their own, one per row: ``coverage`` (n, H, W) in [0, 1] (above 0.5 exactly inside the
+    outline, a soft one-pixel edge) and ``texture`` (n, H, W), the brightness factor of their lattice fringes."""
+
+    coverage: np.ndarray
+    texture: np.ndarray
+
+
+def draw_particles(rng: np.random.Generator, labels: np.ndarray, split: str, grid: tuple[np.ndarray, np.ndarray],
+                   unit: float, place: Placement) -> Particles:
+    """One particle of class ``labels[i]`` per row, at an angle of ``split`` (see :func:`make_tiles`), ``unit``
+    pixels per outline unit (about ±15 %), centred where ``place`` says."""
+    n = labels.shape[0]
+    grid_x, grid_y = grid
     angles, mirrored = _particle_angles(rng, n, split)
     scale = unit * rng.uniform(0.85, 1.15, n)
-    shift = unit * rng.uniform(-3.0, 3.0, (n, 2))
+    shift = place(rng, n)
     px = grid_x[None] - shift[:, 0, None, None]
     py = grid_y[None] - shift[:, 1, None, None]
     cos, sin = np.cos(angles)[:, None, None], np.sin(angles)[:, None, None]
@@ -159,7 +170,7 @@ def _render(rng: np.random.Generator, labels: np.ndarray, split: str, size: int)
     v = (-sin * px + cos * py) / scale[:, None, None]
     u = np.where(mirrored[:, None, None], -u, u)
 
-    distance = np.empty((n, size, size))
+    distance = np.empty((n, *grid_x.shape))
     for label, outline in enumerate(_OUTLINES):
         chosen = labels == label
         distance[chosen] = outline(u[chosen], v[chosen]) * scale[chosen, None, None]
@@ -169,22 +180,49 @@ def _render(rng: np.random.Generator, labels: np.ndarray, split: str, size: int)
     fringe_phase = rng.uniform(0.0, 2 * np.pi, n)[:, None, None]
     fringe_depth = rng.uniform(0.08, 0.2, n)[:, None, None]
     fringes = 1.0 + fringe_depth * np.sin(2 * np.pi * u * scale[:, None, None] / fringe_period + fringe_phase)
-    particle_texture = fringes * (1.0 + 0.12 * _blotches(rng, n, size))
+    return Particles(coverage, fringes * (1.0 + 0.12 * _blotches(rng, n, grid_x.shape[0])))
 
+
+def draw_background(rng: np.random.Generator, n: int, grid: tuple[np.ndarray, np.ndarray]) -> np.ndarray:
+    """Background brightness (n, H, W) about 1: an illumination gradient and a blotchy low-frequency texture."""
+    grid_x, grid_y = grid
+    size = grid_x.shape[0]
     slope_angle = rng.uniform(0.0, 2 * np.pi, n)[:, None, None]
     slope = rng.uniform(0.0, 0.2, n)[:, None, None]
     gradient = slope * (np.cos(slope_angle) * grid_x + np.sin(slope_angle) * grid_y) / size
-    background_level = 1.0 + gradient + 0.08 * _blotches(rng, n, size)
+    return 1.0 + gradient + 0.08 * _blotches(rng, n, size)
 
-    background_tint = np.array([0.25, 0.28, 0.35]) + rng.uniform(-0.05, 0.05, (n, 3))
-    particle_tint = np.array([0.85, 0.68, 0.48]) * rng.uniform(0.75, 1.0, (n, 1)) + rng.uniform(-0.06, 0.06, (n, 3))
-    noise_level = rng.uniform(0.03, 0.07, (n, 1, 1, 1))
 
-    background = background_tint[:, :, None, None] * background_level[:, None]
-    particle = particle_tint[:, :, None, None] * particle_texture[:, None]
-    image = background + coverage[:, None] * (particle - background)
-    image = image + noise_level * rng.standard_normal(image.shape)
-    return np.clip(image, 0.0, 1.0)
+def draw_tints(rng: np.random.Generator, images: int, particles: int) -> tuple[np.ndarray, np.ndarray]:
+    """RGB tints: (images, 3) of the backgrounds, (particles, 3) of the particles."""
+    background_tint = np.array([0.25, 0.28, 0.35]) + rng.uniform(-0.05, 0.05, (images, 3))
+    particle_tint = (np.array([0.85, 0.68, 0.48]) * rng.uniform(0.75, 1.0, (particles, 1))
+                     + rng.uniform(-0.06, 0.06, (particles, 3)))
+    return background_tint, particle_tint
+
+
+def add_noise(rng: np.random.Generator, images: np.ndarray) -> np.ndarray:
+    """``images`` (n, 3, H, W) with pixel noise of a random level per image, clipped to [0, 1]."""
+    noise_level = rng.uniform(0.03, 0.07, (images.shape[0], 1, 1, 1))
+    return np.clip(images + noise_level * rng.standard_normal(images.shape), 0.0, 1.0)
+
+
+def normalise(images: np.ndarray) -> np.ndarray:
+    """Pixels in [0, 1] normalised per channel with :data:`CHANNEL_MEAN` and :data:`CHANNEL_STD`."""
+    return (images - np.array(CHANNEL_MEAN)[None, :, None, None]) / np.array(CHANNEL_STD)[None, :, None, None]
+
+
+def _render(rng: np.random.Generator, labels: np.ndarray, split: str, size: int) -> np.ndarray:
+    """Draw tiles with values in [0, 1], shape (n, 3, size, size)."""
+    n = labels.shape[0]
+    unit = size / DEFAULT_SIZE
+    grid = pixel_grid(size)
+    particles = draw_particles(rng, labels, split, grid, unit, lambda rng, n: unit * rng.uniform(-3.0, 3.0, (n, 2)))
+    level = draw_background(rng, n, grid)
+    background_tint, particle_tint = draw_tints(rng, n, n)
+    background = background_tint[:, :, None, None] * level[:, None]
+    particle = particle_tint[:, :, None, None] * particles.texture[:, None]
+    return add_noise(rng, background + particles.coverage[:, None] * (particle - background))
 
 
 def make_tiles(
@@ -203,13 +241,11 @@ def make_tiles(
     Raises :class:`orbify.errors.OptionError` for an unknown split, a negative count or seed, or a
     size below 9 pixels.
     """
-    _check_arguments(n, split, size, seed)
+    check_draw_arguments("data.make_tiles", n, split, size, seed)
     rng = np.random.default_rng([seed, SPLITS.index(split), size])
     labels = rng.permutation(np.arange(n) % len(CLASS_NAMES))
-    mean = np.array(CHANNEL_MEAN)[None, :, None, None]
-    std = np.array(CHANNEL_STD)[None, :, None, None]
     images = np.empty((n, 3, size, size), dtype=np.float32)
     for start in range(0, n, _CHUNK):  # bounded memory for large n
         chosen = slice(start, start + _CHUNK)
-        images[chosen] = (_render(rng, labels[chosen], split, size) - mean) / std
+        images[chosen] = normalise(_render(rng, labels[chosen], split, size))
     return torch.from_numpy(images), torch.from_numpy(labels.astype(np.int64))

@@ -12,23 +12,28 @@ reports, the exported program, the before/after table and plots in one folder. `
 from __future__ import annotations
 
 import copy
-import io
 import math
 import time
-from contextlib import contextmanager
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 import torch
-from rich.console import Console
 from torch import nn
 from torch.nn.utils import parametrize
 
-from orbify.common.safe_io import atomic_write
 from orbify.conversion.converter import convert
 from orbify.data import ImageSet
-from orbify.errors import OutputError
 from orbify.example import make_tiles
+from orbify.example.demo_support import (
+    PLOTS_SKIPPED,
+    DemoLog,
+    figure_png,
+    milliseconds_per_image,
+    percent,
+    prepare_folder,
+    pyplot,
+    write_figure,
+)
 from orbify.files.export import export_model
 from orbify.files.saving import save
 from orbify.files.sources import EXAMPLE_SOURCE, load_source
@@ -43,6 +48,8 @@ from orbify.verification.check import CheckReport, check_model
 from orbify.verification.html_report import write_check_html
 from orbify.verification.measure import count_macs, count_params
 from orbify.verification.report import check_markdown, markdown_table, plot_check, write_json, write_text
+
+__all__ = ["AVERAGED_COLUMN", "DemoResult", "ModelFigures", "accuracy_by_angle_figure", "figure_png", "run_demo"]
 
 RECIPE = "example"
 """The shipped recipe for the bundled model: budget, channel matching, input size and the tuning settings."""
@@ -78,7 +85,6 @@ MEASURE_BATCH = 16
 """Tiles per forward pass when measuring accuracies and invariance errors. Small batches run fastest
 on CPU; measuring the invariance of the test-time average turns 16 tiles into 16 × |G|² images."""
 TIMING_BATCH = 256
-TIMING_REPEATS = 5
 SEEDS = {"train": 100, "upright": 101, "any": 102}
 """Tile seeds of the demo's own tiles; the shipped weights were trained on tile seeds 0 and 1."""
 
@@ -159,11 +165,11 @@ class DemoResult:
         """The before/after table as a header and rows of strings (terminal and markdown show the same)."""
         header = ("", *(figures.name for figures in self.columns))
         rows = [
-            ("accuracy, upright tiles", *(_percent(f.upright_accuracy) for f in self.columns)),
-            ("accuracy, field tiles (any angle)", *(_percent(f.any_accuracy) for f in self.columns)),
-            (f"accuracy, upright moved by {self.group} (mean)", *(_percent(f.moved_accuracy) for f in self.columns)),
+            ("accuracy, upright tiles", *(percent(f.upright_accuracy) for f in self.columns)),
+            ("accuracy, field tiles (any angle)", *(percent(f.any_accuracy) for f in self.columns)),
+            (f"accuracy, upright moved by {self.group} (mean)", *(percent(f.moved_accuracy) for f in self.columns)),
             (f"accuracy, upright moved by {self.group} (worst)",
-             *(_percent(f.worst_moved_accuracy) for f in self.columns)),
+             *(percent(f.worst_moved_accuracy) for f in self.columns)),
             (f"invariance error ({self.group}, float32)", *(f"{f.invariance_error:.1e}" for f in self.columns)),
             ("parameters stored", *(f"{f.params:,}" for f in self.columns)),
             ("MACs per tile", *(f"{f.macs / 1e6:.2f} M" for f in self.columns)),
@@ -210,8 +216,8 @@ def run_demo(out_dir: str | Path, *, force: bool = False, progress: bool = True)
     """
     started = time.perf_counter()
     folder = Path(out_dir)
-    _prepare_folder(folder, force)
-    log = _Log(progress)
+    prepare_folder(folder, (*FILES.values(), *PLOTS.values()), force)
+    log = DemoLog(progress)
     with torch.random.fork_rng():
         torch.manual_seed(0)
         return _Demo(folder, force, log, started).run()
@@ -220,7 +226,7 @@ def run_demo(out_dir: str | Path, *, force: bool = False, progress: bool = True)
 class _Demo:
     """One demo run; :meth:`run` does the steps in order."""
 
-    def __init__(self, folder: Path, force: bool, log: "_Log", started: float):
+    def __init__(self, folder: Path, force: bool, log: DemoLog, started: float):
         self.folder = folder
         self.force = force
         self.log = log
@@ -328,7 +334,7 @@ class _Demo:
                 invariance_error=invariance,
                 params=count_params(structure),
                 macs=count_macs(structure, images[:1]),
-                ms_per_image=_milliseconds_per_image(model, images[:TIMING_BATCH]),
+                ms_per_image=milliseconds_per_image(model, images[:TIMING_BATCH]),
             )
 
     @torch.no_grad()
@@ -341,25 +347,17 @@ class _Demo:
 
     # -- plots -----------------------------------------------------------------------------------------------
     def write_plots(self, result: DemoResult, report: CheckReport) -> None:
-        try:
-            import matplotlib
-        except ImportError:
-            self.notes.append("plots skipped: matplotlib is not installed (pip install 'orbify[plot]')")
+        plt = pyplot()
+        if plt is None:
+            self.notes.append(PLOTS_SKIPPED)
             return
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt
-
         plot_folder = self.folder / "plots"
         plot_folder.mkdir(exist_ok=True)
         for written in plot_check(report, plot_folder, force=self.force):
             self.files[written.stem] = written
         figure = accuracy_by_angle_figure(plt, result.angles, result.accuracy_by_angle, result.group)
-        self._save_figure(plt, figure, "accuracy_by_angle")
-        self._save_figure(plt, _tuning_figure(plt, result.tuning), "tuning")
-
-    def _save_figure(self, plt, figure, role: str) -> None:
-        png = figure_png(plt, figure)
-        atomic_write(self.path(role), lambda stream: stream.write(png), force=self.force)
+        write_figure(plt, figure, self.path("accuracy_by_angle"), self.force)
+        write_figure(plt, _tuning_figure(plt, result.tuning), self.path("tuning"), self.force)
 
 
 def accuracy_by_angle_figure(plt, angles, accuracy_by_angle: dict[str, tuple[float, ...]], group: str):
@@ -380,14 +378,6 @@ def accuracy_by_angle_figure(plt, angles, accuracy_by_angle: dict[str, tuple[flo
     return figure
 
 
-def figure_png(plt, figure) -> bytes:
-    """``figure`` as the demo writes its plots (PNG, 120 dpi, tight bounding box); the figure is closed."""
-    buffer = io.BytesIO()
-    figure.savefig(buffer, format="png", dpi=120, bbox_inches="tight")
-    plt.close(figure)
-    return buffer.getvalue()
-
-
 def _tuning_figure(plt, tuning: TuneResult):
     figure, axes = plt.subplots(figsize=(7, 4))
     epochs = [0] + [record.epoch for record in tuning.history]
@@ -405,55 +395,7 @@ def _tuning_figure(plt, tuning: TuneResult):
     return figure
 
 
-def _milliseconds_per_image(model: nn.Module, images: torch.Tensor) -> float:
-    """Best of :data:`TIMING_REPEATS` timed forward passes over ``images``, per image, after one warm-up."""
-    model(images)
-    best = math.inf
-    for _ in range(TIMING_REPEATS):
-        begin = time.perf_counter()
-        model(images)
-        best = min(best, time.perf_counter() - begin)
-    return 1000 * best / len(images)
-
-
 def _accuracy(model: nn.Module, images: torch.Tensor, labels: torch.Tensor) -> float:
     """Share of ``images`` whose top logit is the label (the model is used as it is, in eval mode)."""
     predicted = torch.cat([model(chunk).argmax(-1) for chunk in images.split(MEASURE_BATCH)])
     return float((predicted == labels).double().mean())
-
-
-def _percent(value: float) -> str:
-    return f"{100 * value:.1f} %"
-
-
-def _prepare_folder(folder: Path, force: bool) -> None:
-    """Create ``folder``; refuse when it is a file or, without ``force``, when a demo file exists in it."""
-    if folder.exists() and not folder.is_dir():
-        raise OutputError(f"The demo folder {str(folder)!r} is a file", fix="give a folder path with --out")
-    existing = [folder / name for name in (*FILES.values(), *PLOTS.values()) if (folder / name).exists()]
-    if existing and not force:
-        raise OutputError(f"The demo folder {str(folder)!r} already holds demo files ({existing[0].name}, ...)",
-                          fix="choose another folder with --out, or pass --force to replace them")
-    try:
-        folder.mkdir(parents=True, exist_ok=True)
-    except OSError as error:
-        raise OutputError(f"Cannot create the demo folder {str(folder)!r}: {error.strerror or error}",
-                          fix="choose a folder you can write to with --out") from error
-
-
-class _Log:
-    """Prints one line per step with its duration when enabled; silent otherwise."""
-
-    def __init__(self, enabled: bool):
-        self.enabled = enabled
-        self.console = Console(stderr=False)
-
-    def say(self, text: str) -> None:
-        if self.enabled:
-            self.console.print(text, highlight=False)
-
-    @contextmanager
-    def step(self, text: str):
-        begin = time.perf_counter()
-        yield
-        self.say(f"[green]✓[/] {text} ({time.perf_counter() - begin:.1f} s)")

@@ -22,7 +22,8 @@ EXAMPLE_STRIDES: tuple[int, ...] = (1, 2, 2, 2)
 """Stride of each conv block (3x3 kernels, padding 1)."""
 
 
-def _conv_block(in_channels: int, out_channels: int, stride: int) -> nn.Sequential:
+def conv_block(in_channels: int, out_channels: int, stride: int) -> nn.Sequential:
+    """A 3×3 conv (padding 1, no bias), batch norm and ReLU: the block every example model is made of."""
     return nn.Sequential(
         nn.Conv2d(in_channels, out_channels, kernel_size=3, stride=stride, padding=1, bias=False),
         nn.BatchNorm2d(out_channels),
@@ -41,7 +42,7 @@ class ExampleCNN(nn.Module):
         blocks = []
         in_channels = 3
         for width, stride in zip(EXAMPLE_WIDTHS, EXAMPLE_STRIDES):
-            blocks.append(_conv_block(in_channels, width, stride))
+            blocks.append(conv_block(in_channels, width, stride))
             in_channels = width
         self.features = nn.Sequential(*blocks)
         self.pool = nn.AdaptiveAvgPool2d(1)
@@ -59,10 +60,15 @@ def build_example_cnn(num_classes: int = len(CLASS_NAMES)) -> ExampleCNN:
 
     Raises :class:`orbify.errors.OptionError` when ``num_classes`` is below 1.
     """
+    require_classes(num_classes, "model.build_example_cnn", len(CLASS_NAMES))
+    return ExampleCNN(num_classes)
+
+
+def require_classes(num_classes: int, builder: str, usual: int) -> None:
+    """Raise :class:`OptionError` naming ``orbify.example.<builder>`` unless ``num_classes`` is a positive integer."""
     if not isinstance(num_classes, int) or num_classes < 1:
         raise OptionError(
             f"num_classes must be a positive integer, got {num_classes!r}",
-            where="orbify.example.model.build_example_cnn(num_classes=...)",
-            fix=f"pass the number of classes, {len(CLASS_NAMES)} for the bundled tiles",
+            where=f"orbify.example.{builder}(num_classes=...)",
+            fix=f"pass the number of classes, {usual} for the bundled data",
         )
-    return ExampleCNN(num_classes)

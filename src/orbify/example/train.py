@@ -11,6 +11,7 @@ count the run is repeatable bit for bit.
 from __future__ import annotations
 
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -52,14 +53,45 @@ def accuracy(model: nn.Module, images: torch.Tensor, labels: torch.Tensor, batch
     return correct / max(len(images), 1)
 
 
-def _check_settings(**settings_and_minimums: tuple[int, int]) -> None:
+def check_settings(where: str, **settings_and_minimums: tuple[int, int]) -> None:
+    """Raise :class:`OptionError` (naming ``where`` and the setting) for a setting that is not an integer of at least
+    its minimum; each keyword is ``name=(value, minimum)``."""
     for name, (value, least) in settings_and_minimums.items():
         if not isinstance(value, int) or value < least:
             raise OptionError(
                 f"{name} must be an integer of at least {least}, got {value!r}",
-                where=f"orbify.example.train, setting {name}",
+                where=f"{where}, setting {name}",
                 fix=f"pass {name} >= {least}",
             )
+
+
+def fit(build: Callable[[], nn.Module], images: torch.Tensor, targets: torch.Tensor, *, seed: int,
+        epochs: int) -> nn.Module:
+    """A model from ``build()`` trained with Adam and a one-cycle schedule on cross-entropy against ``targets``
+    (class indices: (N,) labels, or (N, H, W) masks for a model returning maps), in eval mode.
+
+    ``build`` runs, and batches are drawn, under ``torch.manual_seed(seed)`` inside ``fork_rng``: the caller's
+    global torch random state is left as it was. At least one batch (64) of images is needed.
+    """
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(seed)
+        model = build()
+        optimizer = torch.optim.Adam(model.parameters(), lr=_LEARNING_RATE)
+        steps_per_epoch = len(images) // _BATCH_SIZE
+        schedule = torch.optim.lr_scheduler.OneCycleLR(
+            optimizer, max_lr=_LEARNING_RATE, total_steps=epochs * steps_per_epoch
+        )
+        loss_function = nn.CrossEntropyLoss()
+        for _ in range(epochs):
+            model.train()
+            order = torch.randperm(len(images))
+            for step in range(steps_per_epoch):
+                batch = order[step * _BATCH_SIZE : (step + 1) * _BATCH_SIZE]
+                optimizer.zero_grad(set_to_none=True)
+                loss_function(model(images[batch]), targets[batch]).backward()
+                optimizer.step()
+                schedule.step()
+    return model.eval()
 
 
 def train_example_model(
@@ -77,41 +109,21 @@ def train_example_model(
     Raises :class:`orbify.errors.OptionError` for a negative seed, no epochs, fewer training
     tiles than one batch (64) or no evaluation tiles.
     """
-    _check_settings(
-        seed=(seed, 0), epochs=(epochs, 1), num_tiles=(num_tiles, _BATCH_SIZE), evaluation_tiles=(evaluation_tiles, 1)
-    )
+    check_settings("orbify.example.train", seed=(seed, 0), epochs=(epochs, 1), num_tiles=(num_tiles, _BATCH_SIZE),
+                   evaluation_tiles=(evaluation_tiles, 1))
     started = time.perf_counter()
-    images, labels = make_tiles(num_tiles, split="upright", seed=2 * seed)
-    with torch.random.fork_rng(devices=[]):
-        torch.manual_seed(seed)
-        model = build_example_cnn()
-        optimizer = torch.optim.Adam(model.parameters(), lr=_LEARNING_RATE)
-        steps_per_epoch = num_tiles // _BATCH_SIZE
-        schedule = torch.optim.lr_scheduler.OneCycleLR(
-            optimizer, max_lr=_LEARNING_RATE, total_steps=epochs * steps_per_epoch
-        )
-        loss_function = nn.CrossEntropyLoss()
-        for _ in range(epochs):
-            model.train()
-            order = torch.randperm(num_tiles)
-            for step in range(steps_per_epoch):
-                batch = order[step * _BATCH_SIZE : (step + 1) * _BATCH_SIZE]
-                optimizer.zero_grad(set_to_none=True)
-                loss_function(model(images[batch]), labels[batch]).backward()
-                optimizer.step()
-                schedule.step()
-    model.eval()
+    model = fit(build_example_cnn, *make_tiles(num_tiles, split="upright", seed=2 * seed), seed=seed, epochs=epochs)
     upright = accuracy(model, *make_tiles(evaluation_tiles, split="upright", seed=2 * seed + 1))
     any_angle = accuracy(model, *make_tiles(evaluation_tiles, split="any", seed=2 * seed + 1))
     return TrainingResult(model, upright, any_angle, time.perf_counter() - started)
 
 
-def _refuse_existing_output(path: Path, force: bool) -> None:
+def refuse_existing_output(path: Path, force: bool, where: str = "orbify.example.train --out") -> None:
     """Fail before training when saving would fail anyway (the save checks again)."""
     if path.exists() and not force:
         raise OutputError(
             f"The output file {str(path)!r} already exists",
-            where="orbify.example.train --out",
+            where=where,
             fix="choose another path, or pass --force to replace it",
         )
 
@@ -130,7 +142,7 @@ def main(
 ) -> None:
     """Train on upright tiles, print upright and any-angle accuracy, save the weights."""
     try:
-        _refuse_existing_output(out, force)
+        refuse_existing_output(out, force)
         result = train_example_model(seed=seed, epochs=epochs, num_tiles=tiles, evaluation_tiles=eval_tiles)
         save_torch(result.model.state_dict(), out, force=force)
     except OrbifyError as error:

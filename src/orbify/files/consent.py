@@ -10,7 +10,8 @@ may name on its own only what a registry vouches for:
   signature before anything is built;
 - ``timm:NAME``: the name is looked up in timm's registry (``timm.is_model``) before
   ``timm.create_model(NAME, pretrained=False)`` is called, when timm is installed;
-- ``example`` (and the factory references of the bundled example that older files record);
+- ``example`` and ``example-segment`` (and the factory references of the bundled example that older files
+  record);
 - leaf module types defined in torch or torchvision modules that are already imported (taking
   them runs no new code).
 

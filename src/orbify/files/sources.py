@@ -10,9 +10,9 @@ A SOURCE is one of, tried in this order:
 ``timm:NAME``
     An architecture of the timm library, built with ``pretrained=False`` (never downloaded;
     :mod:`orbify.files.timm_source`); needs ``orbify[timm]``.
-``example``
-    The bundled example CNN (:mod:`orbify.example`) with its shipped weights; rebuilt from a
-    reference, the architecture alone.
+``example``, ``example-segment``
+    The bundled example CNN (:mod:`orbify.example`), or the bundled segmentation model, with its
+    shipped weights; rebuilt from a reference, the architecture alone.
 a path to an existing file
     First offered to the file loaders added with :func:`register_file_loader` (the extension
     point for orbify's own file formats), then read as a whole model pickled with
@@ -52,17 +52,23 @@ from orbify.files.timm_source import TIMM_PREFIX, build_timm
 from orbify.files.weights import load_weights_file
 
 EXAMPLE_SOURCE = "example"
+EXAMPLE_SEGMENT_SOURCE = "example-segment"
 BUNDLED_FACTORIES = {
     EXAMPLE_SOURCE: "orbify.example.model:build_example_cnn",
+    EXAMPLE_SEGMENT_SOURCE: "orbify.example.segment_model:build_example_segmenter",
     "orbify.example.model:build_example_cnn": "orbify.example.model:build_example_cnn",
     "orbify.example:load_example_model": "orbify.example:load_example_model",
 }
-"""References to orbify's own example, with the factory each calls: ``example`` and the two factory
-references that files written before ``example`` was a reference of its own record."""
-_EXAMPLE_WITH_WEIGHTS = "orbify.example:load_example_model"
+"""References to orbify's own examples, with the factory each calls: ``example``, ``example-segment`` and the two
+factory references that files written before ``example`` was a reference of its own record."""
+_BUNDLED_WITH_WEIGHTS = {
+    EXAMPLE_SOURCE: "orbify.example:load_example_model",
+    EXAMPLE_SEGMENT_SOURCE: "orbify.example:load_example_segmenter",
+}
+"""The factory that builds each bundled example with its shipped weights (a SOURCE the user types)."""
 FACTORY_PATTERN = re.compile(r"^(?P<module>[A-Za-z_][\w.]*):(?P<attribute>[A-Za-z_][\w.]*)$")
 _ACCEPTED_FORMS = (
-    "give torchvision:NAME (e.g. torchvision:resnet18), timm:NAME, example, package.module:factory, "
+    "give torchvision:NAME (e.g. torchvision:resnet18), timm:NAME, example, example-segment, package.module:factory, "
     "or the path of a model file"
 )
 
@@ -71,6 +77,9 @@ IMAGENET_SIZE = 224
 
 EXAMPLE_SIZE = 33
 """The tile side of the bundled example, the SOURCE ``example`` (see :mod:`orbify.example.data`)."""
+EXAMPLE_SEGMENT_SIZE = 49
+"""The scene side of the bundled segmentation example, the SOURCE ``example-segment`` (see
+:mod:`orbify.example.scenes`)."""
 
 
 @dataclass(frozen=True)
@@ -159,7 +168,7 @@ def rebuild(reference: str, *, working_directory: bool = False) -> nn.Module:
     else:
         raise SourceError(
             f"{reference!r} is not a reference that can be rebuilt",
-            fix="use torchvision:NAME, timm:NAME, example or package.module:factory",
+            fix="use torchvision:NAME, timm:NAME, example, example-segment or package.module:factory",
         )
     return module.eval()
 
@@ -167,11 +176,14 @@ def rebuild(reference: str, *, working_directory: bool = False) -> nn.Module:
 def usual_input_size(source: str) -> tuple[int, str]:
     """The input side the architecture a SOURCE names is usually run at, with what that guess rests on.
 
-    ``example`` → 33 (its tile size); ``torchvision:NAME`` (with or without arguments) → 224 (ImageNet
-    backbones); anything else → 224, the most common size of pretrained backbones.
+    ``example`` → 33 (its tile size); ``example-segment`` → 49 (its scene size); ``torchvision:NAME`` (with or
+    without arguments) → 224 (ImageNet backbones); anything else → 224, the most common size of pretrained
+    backbones.
     """
     if source == EXAMPLE_SOURCE:
         return EXAMPLE_SIZE, "the bundled example's tile size"
+    if source == EXAMPLE_SEGMENT_SOURCE:
+        return EXAMPLE_SEGMENT_SIZE, "the bundled segmentation example's scene size"
     if source.startswith(TORCHVISION_PREFIX):
         return IMAGENET_SIZE, "the usual input of torchvision's ImageNet backbones"
     if source.startswith(TIMM_PREFIX):
@@ -189,8 +201,8 @@ def _build(spec: str, *, trust_pickle: bool, trust_source: bool) -> LoadedSource
     if spec.startswith(TIMM_PREFIX):
         module, reference = build_timm(spec)
         return LoadedSource(module.eval(), reference)
-    if spec == EXAMPLE_SOURCE:
-        return LoadedSource(_build_factory(_EXAMPLE_WITH_WEIGHTS, working_directory=False), EXAMPLE_SOURCE)
+    if spec in _BUNDLED_WITH_WEIGHTS:
+        return LoadedSource(_build_factory(_BUNDLED_WITH_WEIGHTS[spec], working_directory=False), spec)
     path = Path(spec)
     if path.is_file():
         return _load_file(path, trust_pickle=trust_pickle, trust_source=trust_source)
