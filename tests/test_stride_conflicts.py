@@ -95,7 +95,7 @@ def test_repair_converts_exactly(shortcut, side, replaced):
     torch.manual_seed(0)
     model = ParityPair(shortcut).eval()
     x = torch.randn(2, 3, side, side)
-    assert invariance_error(orbify.convert(model, "d4", example_input=x[:1])[0], x) > 1e-3   # unrepaired: inexact
+    assert invariance_error(orbify.convert(model, "d4", example_input=x[:1])[0], x) > 1e-5   # unrepaired: inexact
     converted, plan = orbify.convert(model, "d4", example_input=x[:1], repair_strides=True)
     assert invariance_error(converted, x) <= TOL
     assert [n for n in plan.notes if n.startswith("stride repair: '")] == [
