@@ -12,7 +12,10 @@ its usual one, and the converted model is measured:
   ``--max-gmacs`` multiply-accumulates (counted by ``torch.utils.flop_counter`` on the meta device), the
   side is shrunk by the square root of the excess, and the row says so. The model is then converted at the
   safe size nearest that side (``orbify.graph.sizes.SizeChecker.safe_sizes``), or, when none is, at that side
-  itself, and the row gives the reason ``orbify.graph.sizes.choose_input_size`` states;
+  itself, and the row gives the reason ``orbify.graph.sizes.choose_input_size`` states — unless the reason
+  is a stride conflict (ops that need sides of opposite parity) that ``--repair-strides`` resolves: then the model is
+  converted with ``repair_strides=True`` at the safe side of the repaired model nearest that side, and an exact row
+  says "after --repair-strides" with the number of ops replaced and the drift the repair caused before tuning;
 * **error**: the converted model's batch-norm statistics are first estimated on random images
   (``orbify.recalibrate_batch_norm``; with random weights and the initial statistics many outputs are
   constant, which every rotation keeps), then, in float64 on two random images, the invariance error
@@ -75,6 +78,7 @@ from orbify.common.safe_io import atomic_write
 from orbify.errors import OrbifyError, OutputError
 from orbify.files.sources import load_source
 from orbify.graph.sizes import SizeChecker, choose_input_size
+from orbify.graph.stride_repair import REPAIR_NOTE, repaired_model
 from orbify.verification.measure import count_macs, count_params
 from orbify.verification.segmentation import dense_output
 
@@ -309,6 +313,7 @@ class SizeChoice:
     side: int
     note: str         # why the side is not the usual one, or empty
     unsafe: str       # orbify's reason when no safe side was found, or empty
+    repairs: int = 0  # stride repairs that make the side exact (the conversion then repairs them too)
 
 
 def usual_side(model: nn.Module, spec: ModelSpec) -> int:
@@ -342,7 +347,21 @@ def choose_side(model: nn.Module, spec: ModelSpec, settings: Settings) -> SizeCh
     why = "the side asked for"
     reason = choose_input_size(model, (target, why)).reason.removeprefix(why).lstrip(";, ")
     first, *more = reason.split(" | ")   # orbify lists one conflict per part; the first says what it is
-    return SizeChoice(target, note, first + (f" (and {len(more)} more like it)" if more else ""))
+    unsafe = first + (f" (and {len(more)} more like it)" if more else "")
+    return repaired_choice(model, checker.channels, target, note, usual) or SizeChoice(target, note, unsafe)
+
+
+def repaired_choice(model: nn.Module, channels: int, target: int, note: str, usual: int) -> SizeChoice | None:
+    """Where no side is exact because ops need sides of opposite parity: the safe side near ``target`` of the model
+    with its stride conflicts repaired (what ``--repair-strides`` does), or None when the repair cannot make one."""
+    try:
+        repaired, repairs = repaired_model(model, channels, target)
+        nearest = SizeChecker(repaired, channels).safe_sizes(target, 1)
+    except OrbifyError:
+        return None
+    if not repairs or not nearest:
+        return None
+    return SizeChoice(nearest[0], note or (f"usual {usual}" if nearest[0] != usual else ""), "", len(repairs))
 
 
 @torch.no_grad()
@@ -419,7 +438,8 @@ def measure_group(model: nn.Module, spec: ModelSpec, group: str, size: SizeChoic
     row = {"group": group, "size": f"{size.side}" + (f" ({size.note})" if size.note else "")}
     try:
         converted, plan = convert(model, group, head="map" if spec.dense else "invariant",
-                                  example_input=torch.zeros(1, 3, size.side, size.side))
+                                  example_input=torch.zeros(1, 3, size.side, size.side),
+                                  repair_strides=size.repairs > 0)
     except Exception as error:
         return {**row, **outcome_of(error, "converting"), "row_s": time.perf_counter() - started}
     row.update(convert_s=time.perf_counter() - started, params_after=count_params(converted))
@@ -432,12 +452,21 @@ def measure_group(model: nn.Module, spec: ModelSpec, group: str, size: SizeChoic
     if not math.isfinite(error) or not spread >= CONSTANT_OUTPUT:
         return {**row, "detail": f"output constant or not finite (two images differ by {spread:.1e})"}
     if error <= TOLERANCE:
-        return {**row, "outcome": "exact"}
+        return {**row, "outcome": "exact", "detail": repair_detail(plan) if size.repairs else ""}
     if size.unsafe:
         why = f"no safe input size: {size.unsafe}"
     else:
         why = first_inexact_layer(converted, model, plan, size.side)
     return {**row, "outcome": "not exact", "detail": why, "row_s": time.perf_counter() - started}
+
+
+def repair_detail(plan) -> str:
+    """What ``--repair-strides`` changed, from the plan's notes: how many ops, and the drift it measured."""
+    replaced = sum(note.startswith(REPAIR_NOTE + ":") and "(exact on the other parity)" in note for note in plan.notes)
+    drift = next((note for note in plan.notes if note.startswith(REPAIR_NOTE + " drift")), "")
+    change = re.search(r"relative output change ([0-9.e+-]+)", drift)
+    return (f"after --repair-strides ({replaced} ops replaced; relative output change before tuning "
+            f"{float(change.group(1)):.2g})" if change else f"after --repair-strides ({replaced} ops replaced)")
 
 
 def measure_model(spec: ModelSpec, settings: Settings) -> Iterator[dict]:
@@ -579,8 +608,10 @@ def summary_lines(rows: list[Row], groups: tuple[str, ...]) -> list[str]:
         exact_per_group = {g: sum(r.outcome == "exact" for r in rows if r.spec.set == "CNN" and r.group == g)
                            for g in groups}
         per_group = ", ".join(f"under {g}: {n}" for g, n in exact_per_group.items())
+        repaired = sum(row.outcome == "exact" and "--repair-strides" in row.detail for row in rows)
         lines += ["", f"**timm CNN families converted exactly under {' and '.join(groups)}: {every} of {len(cnn)} "
-                      f"({100 * every / len(cnn):.0f} %)** (exact {per_group})."]
+                      f"({100 * every / len(cnn):.0f} %)** (exact {per_group}). Exact rows after "
+                      f"--repair-strides (every source and set): {repaired}."]
     return lines
 
 
