@@ -293,6 +293,15 @@ def test_unknown_architecture_suggests_close_names(tmp_path):
     assert "'resnet19'" in message and "resnet18" in message.split("close:")[1]
 
 
+def test_timm_architectures_are_checked_against_timms_registry(tmp_path):
+    pytest.importorskip("timm")
+    recipe = load_recipe(write(tmp_path, RESNET18.replace('["resnet18"]', '["timm:resnet18d"]')))
+    assert recipe.sources == ("timm:resnet18d",) and recipe.applies_to("timm:resnet18d")
+    # timm.list_models() has resnet18 but no resnet18q (difflib's closest name to it)
+    message = refusal(write(tmp_path, RESNET18.replace('["resnet18"]', '["timm:resnet18q"]')))
+    assert "timm has no model named 'resnet18q'" in message and "resnet18" in message.split("close:")[1]
+
+
 def test_unsafe_input_size_names_file_key_and_safe_sizes(tmp_path):
     # resnet18: five stride-2 ops (3×3 / 7×7 convs with padding, a 3×3 max pool) each need
     # (H + 2·padding − kernel) even; 224 breaks at the first conv (224 + 6 − 7 = 223 is odd), and

@@ -41,12 +41,12 @@ class Recipe:
 
     @property
     def architectures(self) -> tuple[str, ...]:
-        """The architectures as written: torchvision names or ``package.module:factory``."""
+        """The architectures as written: torchvision names, ``timm:NAME`` or ``package.module:factory``."""
         return self.settings["recipe"]["architectures"]
 
     @property
     def sources(self) -> tuple[str, ...]:
-        """Each architecture as a model SOURCE (``torchvision:NAME`` or ``package.module:factory``)."""
+        """Each architecture as a model SOURCE (``torchvision:NAME``, ``timm:NAME`` or ``package.module:factory``)."""
         return tuple(_source(architecture) for architecture in self.architectures)
 
     @property

@@ -27,6 +27,7 @@ from orbify.conversion.converter import convert
 from orbify.errors import GroupError, RecipeError
 from orbify.files.source_arguments import TORCHVISION_PREFIX
 from orbify.files.sources import EXAMPLE_SOURCE, FACTORY_PATTERN
+from orbify.files.timm_source import TIMM_PREFIX
 from orbify.graph.plan import BUDGETS, HEADS, INITS
 from orbify.symmetry.groups import parse_group
 from orbify.tuning.options import SCHEDULES, TuneOptions
@@ -86,9 +87,12 @@ def _architectures(value: list) -> str | None:
 
 
 def _architecture(entry: str) -> str | None:
-    """None for a known torchvision name, ``example`` or a ``package.module:factory`` reference."""
+    """None for a known torchvision name, ``example``, a ``timm:NAME`` that timm knows (any name when timm is not
+    installed: it is checked when a model is built from it) or a ``package.module:factory`` reference."""
     if entry == EXAMPLE_SOURCE:
         return None
+    if entry.startswith(TIMM_PREFIX):
+        return _timm_problem(entry)
     name = entry[len(TORCHVISION_PREFIX):] if entry.startswith(TORCHVISION_PREFIX) else entry
     if ":" in name:
         return None if FACTORY_PATTERN.match(name) else f"{entry!r} is not of the form package.module:factory"
@@ -97,6 +101,18 @@ def _architecture(entry: str) -> str | None:
         return None   # without torchvision, a name cannot be checked until a model is built from it
     close = difflib.get_close_matches(name, known, n=3)
     return f"torchvision has no model named {entry!r}" + (f" (close: {', '.join(close)})" if close else "")
+
+
+def _timm_problem(entry: str) -> str | None:
+    try:
+        import timm
+    except ImportError:
+        return None
+    name = entry[len(TIMM_PREFIX):]
+    if timm.is_model(name):
+        return None
+    close = difflib.get_close_matches(name, timm.list_models(), n=3)
+    return f"timm has no model named {name!r}" + (f" (close: {', '.join(close)})" if close else "")
 
 
 @functools.cache
@@ -122,7 +138,7 @@ CALIBRATION_IMAGES = 256
 SECTIONS: dict[str, dict[str, Key]] = {
     "recipe": {
         "description": Key(str, "one line saying what the recipe is for"),
-        "architectures": Key(list, "torchvision model names (e.g. \"resnet18\") or \"package.module:factory\"",
+        "architectures": Key(list, "torchvision model names (e.g. \"resnet18\"), \"timm:NAME\" or \"package.module:factory\"",
                              check=_architectures),
     },
     "convert": {
