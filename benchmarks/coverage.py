@@ -560,10 +560,23 @@ def run_models(specs: list[ModelSpec], settings: Settings) -> list[Row]:
         outcomes = ", ".join(f"{row.group} {row.outcome}" for row in done[job.spec])
         harness.progress(f"{job.spec.reference}: {outcomes} ({time.monotonic() - job.started:.0f} s)")
 
+    def overdue(receiver) -> bool:
+        """Kill the job if its time is up (a row it sends after that does not count) and say whether it was."""
+        job = running[receiver]
+        if time.monotonic() - job.started <= settings.timeout:
+            return False
+        job.process.kill()
+        job.process.join()
+        finish(receiver, f"timed out after {settings.timeout:g} s (--timeout)")
+        return True
+
     while pending or running:
         while pending and len(running) < settings.jobs:
             running.update([start(context, pending.pop(0), settings)])
-        for receiver in wait(list(running), timeout=1.0):
+        first_deadline = min(job.started for job in running.values()) + settings.timeout
+        for receiver in wait(list(running), timeout=min(1.0, max(0.0, first_deadline - time.monotonic()))):
+            if overdue(receiver):
+                continue
             try:
                 running[receiver].messages.append(receiver.recv())
             except (EOFError, OSError):   # the process closed its end: it is done, or died
@@ -571,11 +584,8 @@ def run_models(specs: list[ModelSpec], settings: Settings) -> list[Row]:
                 process.join()
                 killed = ": killed, probably out of memory" if process.exitcode == -9 else ""
                 finish(receiver, f"its process ended (exit code {process.exitcode}) without a result{killed}")
-        for receiver, job in list(running.items()):
-            if time.monotonic() - job.started > settings.timeout:
-                job.process.kill()
-                job.process.join()
-                finish(receiver, f"timed out after {settings.timeout:g} s (--timeout)")
+        for receiver in list(running):
+            overdue(receiver)
     return [row for spec in specs for row in done[spec]]
 
 

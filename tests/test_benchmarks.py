@@ -253,3 +253,23 @@ def test_coverage_quick(run_quick, tmp_path):
     with pytest.raises(SystemExit, match="already exists"):   # refused before any work without --force
         run_quick("coverage.py", "--out", str(page_path))
     assert page_path.read_text() == page
+
+
+def test_coverage_rows_of_killed_and_refused_models(run_quick, tmp_path):
+    from orbify.errors import UnsupportedOpError
+
+    # every process is killed at its deadline, and a row it sends after the deadline does not count (the quick
+    # models' c4 rows take about 0.6 s, under the 1 s the parent waits for messages at most)
+    output = run_quick("coverage.py", "--out", str(tmp_path / "coverage.md"), "--timeout", "0.01", "--groups", "c4")
+    results = [row[10] for name in ("shufflenet_v2_x0_5", "lraspp_mobilenet_v3_large", "resnet10t")
+               for row in rows(output, name)]
+    assert results == ["failed: timed out after 0.01 s (--timeout)"] * 3
+    coverage = load_script("coverage")
+    error = UnsupportedOpError("Cutting channels 0:12 of a orbit(4) value. It splits an orbit",
+                               where='graph node \'getitem\' at File "/venv/lib/site-packages/timm/models/x.py", line 7',
+                               fix="use widths divisible by 4")
+    assert coverage.refusal(error) == ("Cutting channels 0:12 of a orbit(4) value. Where: graph node 'getitem' at "
+                                       'File "timm/models/x.py", line 7')
+    assert [coverage.timm_family(name) for name in ("resnet50d", "mobilenetv3_large_100", "cs3darknet_s",
+                                                    "tf_efficientnet_b0", "res2net50_14w_8s", "inception_v3")] == \
+        ["resnet", "mobilenetv3", "cs3darknet", "tf_efficientnet", "res2net", "inception_v3"]
