@@ -16,15 +16,6 @@ from orbify.errors import DataError, OptionError
 from orbify.experiments.digits import load_digit_splits, train_digits_cnn
 
 
-@pytest.fixture(autouse=True, scope="module")
-def one_thread():
-    """One intra-op thread per test process: the suite runs two processes on two cores."""
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(threads)
-
-
 def max_invariance_error(model: nn.Module, group, images: torch.Tensor) -> float:
     """max over g of ‖f(g·x) − f(x)‖ / ‖f(x)‖, in float64."""
     model = model.double()

@@ -18,13 +18,6 @@ from orbify.symmetry.layouts import Orbit, Permuted
 torchvision = pytest.importorskip("torchvision")
 
 
-@pytest.fixture(autouse=True, scope="module")
-def one_thread():
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(threads)
-
 
 def moved_copies(x: torch.Tensor, group: str) -> list[torch.Tensor]:
     """The input turned by every quarter turn and, under d4, mirrored too (torch.rot90 / torch.flip)."""

@@ -47,14 +47,6 @@ def max_invariance_error(model: nn.Module, group, images: torch.Tensor) -> float
                    for g in range(group.order))
 
 
-@pytest.fixture(autouse=True, scope="module")
-def one_thread():
-    """One intra-op thread per test process: the suite runs two processes on two cores."""
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(threads)
-
 
 # -- the teacher ------------------------------------------------------------------------------------
 def test_view_combinations_match_scipy():

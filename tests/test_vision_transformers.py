@@ -20,14 +20,6 @@ from orbify.symmetry.groups import parse_group
 from orbify.symmetry.layouts import Orbit, Plain, Tokens, act
 
 
-@pytest.fixture(autouse=True)
-def one_thread():
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(threads)
-
-
 def numpy_move(grid: np.ndarray, turns: int, mirror: bool) -> np.ndarray:
     """Element (turns, mirror) on the last two axes: mirror (left-right) first, then quarter turns (numpy)."""
     if mirror:
