@@ -202,18 +202,3 @@ def test_bad_options_list_choices():
         with pytest.raises(Exception) as info:
             convert(net, example_input=torch.randn(1, 3, 9, 9), **{"group": "c4", **kwargs})
         assert text in str(info.value)
-
-
-@pytest.mark.parametrize("group_name, refused", [("c4", True), ("d4", True), ("c2", False), ("d2", False)])
-def test_a_kernel_longer_on_one_axis_is_refused_under_quarter_turns(group_name, refused):
-    """A 1×7 conv (as in torchvision's inception_v3) becomes a 7×1 conv under a quarter turn: no tying can make it
-    equivariant then; a half turn and the mirror keep its shape."""
-    model = nn.Sequential(nn.Conv2d(3, 8, (1, 7), padding=(0, 3)), nn.ReLU(), nn.AdaptiveAvgPool2d(1), nn.Flatten(),
-                          nn.Linear(8, 2)).eval()
-    x = torch.randn(2, 3, 9, 9)
-    if refused:
-        with pytest.raises(UnsupportedOpError, match=r"kernel_size \(1, 7\).*quarter turn"):
-            convert(model, group_name, example_input=x)
-    else:
-        converted, _ = convert(model, group_name, example_input=x)
-        assert invariance_error(converted, parse_group(group_name), x) <= TOL

@@ -69,6 +69,10 @@ VIT_LAYERS = {"vit_b_16": 2, "vit_b_32": 2, "vit_l_16": 2}
 # ConvNeXt keeps its stem, widths and downsampling layers but one block per stage (3-3-9-3 or 3-3-27-3 blocks):
 # every op of the deep model is in the shallow one, at a fraction of the time (convnext_small whole took ~50 s).
 SHALLOW_STAGES = {"convnext_tiny", "convnext_small"}
+# timm's ViT and DeiT: built by timm.create_model (pretrained=False) for a 2×2 patch grid (img_size = 2 × 16) with 2
+# of their 12 blocks, their widths and heads kept, for the same reasons as torchvision's ViTs above.
+TIMM_GRID_SIDE = 32
+TIMM_DEPTH = 2
 
 CASES = [(recipe.name, architecture) for recipe in list_recipes() for architecture in recipe.architectures]
 
@@ -127,6 +131,14 @@ def vit_at(architecture: str, side: int):
     return model.eval()
 
 
+def timm_vit_at(architecture: str, side: int) -> nn.Module:
+    """timm's ViT ``architecture`` (``timm:NAME``) built for ``side``-pixel images with TIMM_DEPTH blocks."""
+    timm = pytest.importorskip("timm")
+    model = timm.create_model(architecture.removeprefix("timm:"), pretrained=False, img_size=side, depth=TIMM_DEPTH)
+    assert model.patch_embed.patch_size == (side // 2, side // 2)
+    return model.eval()
+
+
 def one_block_per_stage(model: nn.Module) -> nn.Module:
     """torchvision's ConvNeXt with only the first block of each stage (``features`` alternates downsampling layers
     and stages, each stage a Sequential of CNBlock)."""
@@ -160,6 +172,9 @@ def test_recipe_converts_its_architecture_invariantly(recipe_name, architecture)
     if architecture in VIT_GRID_SIDE:
         size = VIT_GRID_SIDE[architecture]
         original = vit_at(architecture, size)
+    elif architecture.startswith("timm:"):
+        size = TIMM_GRID_SIDE
+        original = timm_vit_at(architecture, size)
     elif architecture not in AT_RECIPE_SIZE:
         size = SMALL_SAFE[architecture]
         published_minimum = torchvision.models.get_model_weights(architecture).DEFAULT.meta["min_size"][0]

@@ -12,8 +12,11 @@ from torch import fx
 from torch.nn.utils import parametrize
 
 from orbify.conversion.layer_builder import FedWeight, LayerBuilder, MatchedWeight, TiedLayer, channels_of
+from orbify.conversion.output_widths import output_width, part_source
 from orbify.conversion.state import ConversionState
 from orbify.errors import OrbifyError
+from orbify.graph.attention_heads import head_projection
+from orbify.graph.orbit_cuts import PART_ORBITS
 from orbify.symmetry.layouts import Layout, Orbit, Plain
 from orbify.transfer.channels import ChannelMap, budget_source
 from orbify.transfer.kinds import chooses_channels
@@ -36,14 +39,28 @@ class ChannelChooser:
         if layer.depthwise:   # channels follow the input channels
             return state.maps[in_node], state.identity_maps[in_node]
         channels = channels_of(layer.old)[1]
-        identity_map = self._map(layer.lout, self._identity_source(layer.lout, channels), channels)
+        if head_projection(node) and layer.lout.size(state.group) == channels:   # the original's heads, in order
+            return ChannelMap.identity(channels), ChannelMap.identity(channels)
+        identity_map = self._map(layer.lout, self._identity_source(node, layer.lout, channels), channels)
         chosen = self._chosen_map(node, layer, identity_map) if state.matching else identity_map
         return chosen, identity_map
 
-    def _identity_source(self, layout: Layout, channels: int) -> torch.Tensor:
+    def _identity_source(self, node: fx.Node, layout: Layout, channels: int) -> torch.Tensor:
+        """The original channel of every output position of ``node`` under the budget. Where the output width was
+        decided by the graph around it (:func:`orbify.conversion.output_widths.output_width`): a split output holds
+        the budget's positions part by part (and the split is told their orbits, :data:`PART_ORBITS`); an output
+        as wide as a value it is combined with holds that value's channels in its positions."""
         if isinstance(layout, Plain):
             return torch.arange(channels)
-        return budget_source(channels, layout.orbits, self.state.group.order, self.state.budget)
+        state = self.state
+        order, budget = state.group.order, state.budget
+        width = output_width(node, channels, state)
+        if width.orbits == layout.orbits and width.split is not None:
+            width.split.meta[PART_ORBITS] = [orbits for _, orbits in width.parts]
+            return part_source(width.parts, lambda part, orbits: budget_source(part, orbits, order, budget))
+        if width.orbits == layout.orbits and width.partner is not None:
+            return state.identity_maps[width.partner].source
+        return budget_source(channels, layout.orbits, order, budget)
 
     def _map(self, layout: Layout, source: torch.Tensor, channels: int) -> ChannelMap:
         """The map of a layer output: embedded (slot 0 feeds on) for ``embed`` orbits, else copies share."""

@@ -23,6 +23,7 @@ from orbify.conversion.state import ConversionState
 from orbify.conversion.walk import GraphWalk
 from orbify.errors import InputShapeError, OptionError
 from orbify.graph.channel_order import shuffle_orbits
+from orbify.graph.invariant_parts import separate_single_channel_parts
 from orbify.graph.plan import BUDGETS, HEADS, INITS, ConversionPlan
 from orbify.graph.stride_repair import repair_for_conversion
 from orbify.graph.tracing import trace
@@ -137,11 +138,13 @@ def _rewrite(gm: fx.GraphModule, group: Group, plan: ConversionPlan, match: bool
     With ``plan.stop_at`` an orbit pool goes after that node and everything after it stays plain;
     otherwise the layers that produce the output keep plain outputs.
     """
+    separated, notes = separate_single_channel_parts(gm)   # kept plain: invariant single channels
+    plan.notes.extend(notes)
     if plan.stop_at is not None:
         pool = insert_pool(gm, find_node(gm, plan.stop_at), "orbit_pool", group.order)
-        plain_outputs = descendants(pool)
+        plain_outputs = descendants(pool) | separated
     else:
-        plain_outputs = head_layers(gm)
+        plain_outputs = head_layers(gm) | separated
     shuffles = shuffle_orbits(gm, group.order)
     if shuffles:
         plan.notes.append(f"{shuffles} channel shuffle{'s' if shuffles > 1 else ''} rewritten to shuffle whole orbits "

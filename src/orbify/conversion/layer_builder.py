@@ -12,13 +12,16 @@ from dataclasses import dataclass, field, replace
 import torch
 from torch import fx, nn
 
+from orbify.conversion.output_widths import output_width
 from orbify.conversion.state import ConversionState
 from orbify.errors import WidthError
-from orbify.graph.plan import orbits_for
+from orbify.graph.attention_heads import head_projection
+from orbify.graph.channel_attention import POSITION_WEIGHTS_NOTE, position_weights
 from orbify.graph.rules import CONVERT_UP_TO, ConversionContext, Step
+from orbify.graph.square_kernels import SquareKernel, square_kernel
+from orbify.graph.standardized_convs import adopt_standardization, constructor_arguments
 from orbify.graph.tracing import describe, shape
 from orbify.layers.tied import OrbitBatchNorm, conv_fibre, tie_attention, tie_conv, tie_linear
-from orbify.symmetry.groups import Group
 from orbify.symmetry.layouts import Flat, Layout, Orbit, Permuted, Plain, Tokens
 from orbify.transfer.channels import ChannelMap, rows
 from orbify.transfer.kinds import is_depthwise
@@ -49,7 +52,8 @@ class TiedLayer:
     ``fed`` is kept once matching has prepared the weight (to reuse it), ``matched`` once matching
     has found the tied weight for its chosen rows. ``axes``: the layout of the channels-last value (a
     :class:`Permuted` map or a :class:`Tokens` sequence) that a Linear over the last axis reads; it writes a
-    value with the same axes (``lin`` and ``lout`` are the layouts of their channels).
+    value with the same axes (``lin`` and ``lout`` are the layouts of their channels). ``square``: the square kernel a
+    conv's kernel grew to (:mod:`orbify.graph.square_kernels`; carried weights are embedded in it), None when kept.
     """
 
     old: nn.Module
@@ -61,6 +65,7 @@ class TiedLayer:
     fed: FedWeight | None = None
     matched: MatchedWeight | None = None
     axes: Permuted | None = None
+    square: SquareKernel | None = None
 
     @property
     def transposed(self) -> bool:
@@ -79,7 +84,8 @@ class TiedLayer:
         if self.fed is not None and self.fed.in_map is in_map and source is not None and \
                 (self.groups == 1 or source.numel() == self.fed.weight.shape[0]):
             return rows(self.fed.weight, source)   # rows and inputs commute; grouped blocks agree at equal widths
-        return carried_weight(self.old, in_map, source, self.groups)
+        weight = carried_weight(self.old, in_map, source, self.groups)
+        return weight if self.square is None else self.square.embed(weight)
 
 
 class LayerBuilder:
@@ -123,14 +129,10 @@ class LayerBuilder:
     def _linear_axes(self, step: Step, lin: Layout) -> Permuted | None:
         """The layout of the channels-last value a Linear reads over its last axis (None: (B, C) features).
 
-        Refuses a Linear over another axis than the channels, and calibration of one over channels last.
+        Refuses a Linear over another axis than the channels.
         """
         rank = len(shape(step.node.all_input_nodes[0]) or ())
         if isinstance(lin, Permuted) and lin.channel_axis == rank - 1:
-            if self.state.init == "calibrated":
-                raise step.refuse("Calibration does not refit a Linear over channels last yet",
-                                  "convert with init='orbit-average' (--init orbit-average) and tune, or convert "
-                                  "only up to the node before it")
             return lin
         if rank > 2 or isinstance(lin, Permuted) or not isinstance(lin, (Plain, Orbit, Flat)):
             raise step.refuse("A Linear over an axis that does not hold the channels",
@@ -154,21 +156,26 @@ class LayerBuilder:
         group = self.state.group
         if not isinstance(lin, (Plain, Orbit)):
             raise step.refuse("A conv reads a flattened tensor", CONVERT_UP_TO)
-        _require_square_geometry(step, old, group)
-        notes: list[str] = []
+        square = square_kernel(step, old, group, CONVERT_UP_TO)   # None: the kernel is kept
+        notes = [] if square is None else [square.note]
         if is_depthwise(old):
             lout, groups = lin, lin.size(group)
         else:
             lout = self._output_layout(node, old.out_channels)
+            if position_weights(node):
+                notes.append(POSITION_WEIGHTS_NOTE)
             groups = self._groups(step, old.groups, lin, lout, notes)
-        new = self._new(type(old), lin.size(group), lout.size(group), **_conv_geometry(old, groups))
+        new = self._new(type(old), lin.size(group), lout.size(group), **_conv_geometry(old, groups, square))
         tie_conv(new, group, lin, lout, where=describe(node), project=not self.state.carry)
-        return TiedLayer(old, new, lin, lout, groups, notes)
+        notes.extend(adopt_standardization(step, old, new, group, (lin, lout), self.state.init))   # weight-standardized
+        return TiedLayer(old, new, lin, lout, groups, notes, square=square)
 
     def _output_layout(self, node: fx.Node, channels: int) -> Layout:
-        if node in self.plain_outputs:
+        if node in self.plain_outputs or position_weights(node):   # heads; one invariant weight per position
             return Plain(channels)
-        return Orbit(orbits_for(channels, self.state.group, self.state.budget))
+        if head_projection(node) and channels % self.state.group.order == 0:   # split into heads: width kept
+            return Orbit(channels // self.state.group.order)
+        return Orbit(output_width(node, channels, self.state).orbits)   # the budget, or as the graph around needs
 
     def _new(self, kind: type, *args, **kwargs) -> nn.Module:
         """A new layer; its parameters are left uninitialised when the original weights overwrite them."""
@@ -192,25 +199,15 @@ class LayerBuilder:
         raise step.refuse("No grouping of this conv keeps whole orbits", "use a group whose order divides the widths")
 
 
-def _require_square_geometry(step: Step, old: nn.Module, group: Group) -> None:
-    """A group that turns by a quarter (or less) swaps the two axes, so a conv must act alike on both: refuse a
-    1×7 kernel (or different strides, paddings, dilations per axis) under it."""
-    swaps = not group.exact or any(group.quarter_turns(g) % 2 for g in range(group.order))
-    sides = {name: getattr(old, name) for name in ("kernel_size", "stride", "padding", "dilation")}
-    uneven = {name: value for name, value in sides.items() if isinstance(value, tuple) and len(set(value)) > 1}
-    if swaps and uneven:
-        described = ", ".join(f"{name} {value}" for name, value in uneven.items())
-        raise step.refuse(f"A conv with {described} differs between the axes, which a quarter turn swaps",
-                          f"convert under a group without quarter turns (c2 or d2), or {CONVERT_UP_TO}")
-
-
-def _conv_geometry(old: nn.Module, groups: int) -> dict:
-    """Keyword arguments for a conv of the same type and geometry as ``old`` with a new group count."""
-    kwargs = dict(kernel_size=old.kernel_size, stride=old.stride, padding=old.padding, dilation=old.dilation,
+def _conv_geometry(old: nn.Module, groups: int, square: SquareKernel | None) -> dict:
+    """Keyword arguments for a conv of the same type and geometry as ``old`` with a new group count (and the square
+    kernel and padding ``square`` when it grew to one)."""
+    kernel, padding = (old.kernel_size, old.padding) if square is None else (square.kernel_size, square.padding)
+    kwargs = dict(kernel_size=kernel, stride=old.stride, padding=padding, dilation=old.dilation,
                   groups=groups, bias=old.bias is not None, padding_mode=old.padding_mode, **factory_kwargs(old.weight))
     if isinstance(old, nn.ConvTranspose2d):
         kwargs["output_padding"] = old.output_padding
-    return kwargs
+    return constructor_arguments(old, kwargs)
 
 
 def channels_of(module: nn.Module) -> tuple[int, int]:

@@ -14,25 +14,19 @@ from orbify.conversion.layer_builder import LayerBuilder, TiedLayer
 from orbify.conversion.norms import affine_norm_for, batch_norm_for
 from orbify.conversion.recording import record_layer, record_norm
 from orbify.conversion.state import ConversionState
-from orbify.conversion.token_weights import (
-    TiedTensors,
-    attention_residual,
-    attention_weights,
-    carry_attention,
-    token_tensor_rows,
-)
+from orbify.conversion.token_weights import TiedTensors, resampling_note
 from orbify.conversion.weight_loading import carry_layer_weights
-from orbify.graph.channels_last import ChannelParameter
+from orbify.graph.channel_attention import ORBITWISE_NOTE
+from orbify.graph.channels_last import TENSOR_HOLDER, ChannelParameter
 from orbify.graph.rules import Step
 from orbify.graph.tokens import TokenParameter
+from orbify.layers.orbitwise import orbitwise_conv1d
 from orbify.layers.tied import tie_affine, tie_channel_tensor, tie_entries
 from orbify.symmetry.groups import Group
 from orbify.symmetry.layouts import Layout, unpermuted
-from orbify.transfer.channels import rows
+from orbify.transfer.attention import attention_residual, attention_weights, carry_attention, token_tensor_rows
+from orbify.transfer.channels import ChannelMap, rows
 from orbify.transfer.norms import load_norm_rows
-
-TENSOR_HOLDER = "channel_tensors"
-"""The child module that takes the top module's per-channel tensors when they are tied."""
 
 
 class LayerConverter:
@@ -98,7 +92,7 @@ class LayerConverter:
         state = self.state
         if self.tied_tensors.seen(step, parameter.attribute.target, parameter.layout):
             return
-        owner, name = self._owner(parameter.attribute)
+        owner, name = tensor_owner(self.state.gm, parameter.attribute)
         target = parameter.attribute.target   # changed when the tensor moved from the top module
         old = getattr(owner, name).detach()
         source = self._value_source(step)
@@ -115,9 +109,11 @@ class LayerConverter:
         those of the channels of the tokens it meets; the plan's notes list them."""
         if self.tied_tensors.seen(step, parameter.attribute.target, parameter.layout):
             return
-        owner, name = self._owner(parameter.attribute)
+        owner, name = tensor_owner(self.state.gm, parameter.attribute)
         value = token_tensor_rows(getattr(owner, name).detach(), self._value_source(step), parameter.layout)
         tie_entries(owner, name, value, parameter.layout.entry_permutation(self.group, tuple(value.shape)))
+        if parameter.resampling is not None:   # resampled to the input's grid: how exact elsewhere, measured
+            self.state.plan.notes.append(resampling_note(parameter, getattr(owner, name).detach(), self.group))
         self.tied_tensors.add("token tensors averaged over the joint orbits of patch tokens and channels",
                         parameter.attribute.target, parameter.layout)
 
@@ -135,34 +131,29 @@ class LayerConverter:
         record_layer(state, node, TiedLayer(old, new, layout, layout), residual, identity_residual)
         return layout
 
+    def convert_channel_conv(self, step: Step) -> Layout:
+        """A 1-D conv along a pooled vector's orbit channels: :func:`convert_orbitwise`."""
+        return convert_orbitwise(self.state, self.replacer, step)
+
+    def add_note(self, text: str) -> None:
+        """Add a line to the plan's notes."""
+        self.state.plan.notes.append(text)
+
+    def keep_original_channels(self, step: Step, channels: int) -> None:
+        """Give ``step``'s value the identity map of ``channels`` channels (attention heads split from, or merged
+        into, a value holding the original's channels in order); refused when its input holds others."""
+        state = self.state
+        held = state.maps[step.node.all_input_nodes[0]]
+        if held.new != held.original or not torch.equal(held.source, torch.arange(held.new)):
+            raise step.refuse("Attention heads split from channels that do not stand for the original's in order",
+                              "keep the width of the layer before the heads (the 'channels' budget), or convert only "
+                              "up to the node before it")
+        state.maps[step.node] = state.identity_maps[step.node] = ChannelMap.identity(channels)
+
     def _value_source(self, step: Step) -> torch.Tensor:
         """The original channel of every channel of the value ``step``'s model tensor meets."""
         state = self.state
         return next(state.maps[arg] for arg in step.node.all_input_nodes if state.layouts.get(arg) is not None).source
-
-    def _owner(self, attribute: fx.Node) -> tuple[nn.Module, str]:
-        """The module holding a ``get_attr`` node's tensor, and the tensor's name there.
-
-        A tensor of the top module moves into its child :data:`TENSOR_HOLDER` first (every ``get_attr`` of it
-        follows): a GraphModule cannot be parametrized itself.
-        """
-        gm = self.state.gm
-        owner_name, _, name = attribute.target.rpartition(".")
-        if owner_name:
-            return gm.get_submodule(owner_name), name
-        if TENSOR_HOLDER not in gm._modules:
-            gm.add_module(TENSOR_HOLDER, nn.Module())
-        holder = gm.get_submodule(TENSOR_HOLDER)
-        if name in gm._parameters:
-            holder.register_parameter(name, gm._parameters.pop(name))
-        elif name in gm._buffers:
-            holder.register_buffer(name, gm._buffers.pop(name), persistent=name not in gm._non_persistent_buffers_set)
-        else:
-            setattr(holder, name, getattr(gm, name))
-            delattr(gm, name)
-        for node in gm.graph.find_nodes(op="get_attr", target=name):
-            node.target = f"{TENSOR_HOLDER}.{name}"
-        return holder, name
 
     def _input_source(self, step: Step) -> torch.Tensor:
         """The original channel each channel of the step's (first) input carries."""
@@ -174,6 +165,24 @@ class LayerConverter:
         record_norm(self.state, step.node, old, new, step.layout)
 
 
+def convert_orbitwise(state: ConversionState, replacer: ModuleReplacer, step: Step) -> Layout:
+    """Replace the 1-D conv along the orbit channels of a pooled vector by the same kernel run along the orbits,
+    slot by slot; recorded (as a layer its layout passes through) with the note of how it differs from the original,
+    on the layer and in the plan's notes, which list every such conv in one note."""
+    old = state.module(step.node)
+    new = orbitwise_conv1d(old, state.group.order)
+    replacer.replace(step.node, new)
+    record_norm(state, step.node, old, new, step.layout)
+    state.plan.layers[-1].notes.append(ORBITWISE_NOTE)
+    notes = state.plan.notes
+    listed = next((i for i, note in enumerate(notes) if note.startswith(ORBITWISE_NOTE)), None)
+    if listed is None:
+        notes.append(f"{ORBITWISE_NOTE}: '{step.node.target}'")
+    else:
+        notes[listed] += f", '{step.node.target}'"
+    return step.layout
+
+
 def _integers(args) -> set[int]:
     """The integers among (nested) node arguments."""
     found: set[int] = set()
@@ -183,3 +192,27 @@ def _integers(args) -> set[int]:
         elif isinstance(arg, int) and not isinstance(arg, bool):
             found.add(arg)
     return found
+
+
+def tensor_owner(gm: fx.GraphModule, attribute: fx.Node) -> tuple[nn.Module, str]:
+    """The module holding a ``get_attr`` node's tensor, and the tensor's name there.
+
+    A tensor of the top module moves into its child :data:`TENSOR_HOLDER` first (every ``get_attr`` of it
+    follows): a GraphModule cannot be parametrized itself.
+    """
+    owner_name, _, name = attribute.target.rpartition(".")
+    if owner_name:
+        return gm.get_submodule(owner_name), name
+    if TENSOR_HOLDER not in gm._modules:
+        gm.add_module(TENSOR_HOLDER, nn.Module())
+    holder = gm.get_submodule(TENSOR_HOLDER)
+    if name in gm._parameters:
+        holder.register_parameter(name, gm._parameters.pop(name))
+    elif name in gm._buffers:
+        holder.register_buffer(name, gm._buffers.pop(name), persistent=name not in gm._non_persistent_buffers_set)
+    else:
+        setattr(holder, name, getattr(gm, name))
+        delattr(gm, name)
+    for node in gm.graph.find_nodes(op="get_attr", target=name):
+        node.target = f"{TENSOR_HOLDER}.{name}"
+    return holder, name

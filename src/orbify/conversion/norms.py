@@ -9,7 +9,7 @@ from orbify.graph.rules import CONVERT_UP_TO, Step
 from orbify.graph.tracing import shape
 from orbify.layers.tied import OrbitBatchNorm
 from orbify.symmetry.groups import Group
-from orbify.symmetry.layouts import Flat, Layout, Orbit, Permuted
+from orbify.symmetry.layouts import Flat, HeadValues, Layout, Orbit, Permuted
 from orbify.transfer.loading import factory_kwargs
 from orbify.transfer.norms import batch_norm_rows, fresh_batch_norm
 
@@ -40,14 +40,14 @@ def affine_norm_for(step: Step, old: nn.GroupNorm | nn.LayerNorm, group: Group) 
     factory = factory_kwargs(like) if like is not None else {}
     if isinstance(old, nn.GroupNorm):
         per_group = channels // old.num_groups if channels % old.num_groups == 0 else 0
-        if isinstance(layout, Permuted):
+        if isinstance(layout, (Permuted, HeadValues)):
             raise step.refuse("GroupNorm over a value whose channels are not on axis 1", CONVERT_UP_TO)
         if isinstance(layout, Orbit) and (per_group == 0 or per_group % group.order):
             raise step.refuse(f"GroupNorm with {old.num_groups} groups does not hold whole orbits of "
                               f"{group.order} channels", "use a group count that divides the orbits")
         return nn.GroupNorm(old.num_groups, channels, old.eps, old.affine, **factory)
     in_shape = shape(step.node.all_input_nodes[0])
-    over_channels = (layout.channel_axis == len(in_shape) - 1 if isinstance(layout, Permuted)
+    over_channels = (layout.channel_axis == len(in_shape) - 1 if isinstance(layout, (Permuted, HeadValues))
                      else len(in_shape) == 2 and not (isinstance(layout, Flat) and old.elementwise_affine))
     if len(old.normalized_shape) != 1 or in_shape[-1] != old.normalized_shape[0] or not over_channels:
         raise step.refuse("LayerNorm is supported over the channel axis only: of (B, C) features or the last axis "

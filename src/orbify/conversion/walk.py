@@ -29,7 +29,9 @@ class GraphWalk:
         """Walk every node, record its layout in the plan, then recompile the rewritten module."""
         state = self.state
         for node in list(state.gm.graph.nodes):
-            if node.op == "placeholder":
+            if node.op == "placeholder" and shape(node) is None:   # an argument kept at its default (no tensor)
+                state.layouts[node] = None
+            elif node.op == "placeholder":
                 channels = shape(node)[1]
                 state.layouts[node] = Plain(channels)
                 state.maps[node] = state.identity_maps[node] = ChannelMap.identity(channels)
@@ -70,7 +72,8 @@ class GraphWalk:
             if lost > 0:
                 self.state.plan.notes.append(
                     f"{lost} of the {taken.new} channels of '{node.name}' stand for original channels of the other "
-                    "part (a channel shuffle moved them across the split): weights read from them start at zero")
+                    "part (a channel shuffle, or a cut moved to an orbit boundary, moved them across the cut): weights "
+                    "read from them start at zero")
 
     def _carried_map(self, node: fx.Node, layout: Layout | None, maps: dict[fx.Node, ChannelMap]) -> ChannelMap | None:
         """The channel map of a node that does not choose channels: carried from its inputs'."""

@@ -13,6 +13,7 @@ from torch import fx
 
 from orbify.conversion.layer_builder import TiedLayer
 from orbify.conversion.state import ConversionState
+from orbify.graph.standardized_convs import load_gain
 from orbify.symmetry.layouts import Orbit
 from orbify.transfer.channels import ChannelMap
 from orbify.transfer.loading import load_bias, load_weight, loaded_residual, tied_residual
@@ -34,6 +35,7 @@ def carry_layer_weights(state: ConversionState, layer: TiedLayer, in_node: fx.No
 def _load(state: ConversionState, layer: TiedLayer, in_map: ChannelMap, out_map: ChannelMap) -> float | None:
     """Carry the original weight and bias into ``layer.new``; return the weight residual (None for embed)."""
     load_bias(layer.new, layer.old, out_map.source)
+    load_gain(layer.new, layer.old, out_map.source)   # a scaled weight-standardized conv's gain
     matched = layer.matched
     if matched is not None and layer.fed.in_map is in_map and torch.equal(matched.source, out_map.source):
         with torch.no_grad():

@@ -44,6 +44,11 @@ _SHAPING = {
 }
 
 
+TENSOR_HOLDER = "channel_tensors"
+"""The child module that takes the top module's tensors (per-channel and token tensors) when they are tied: a
+``get_attr`` of tensor ``name`` of the top module then reads ``TENSOR_HOLDER.name``."""
+
+
 @dataclass(frozen=True)
 class ChannelParameter:
     """A model tensor multiplied or added into a value per channel: the ``get_attr`` node ``attribute`` (its

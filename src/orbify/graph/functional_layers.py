@@ -11,10 +11,15 @@ check treat it as they treat the module form. The tensors move from their owner 
 registered as the owner's child ``norm`` / ``linear`` / ``conv``; the owner itself (whose forward
 is no longer called) becomes a plain container of its children (e.g. the activation called after
 the norm) and of its tensors that are still used, so no code that looks for norm or conv modules
-mistakes it for one.
+mistakes it for one. Each new module's node records the call it was made from (:data:`FUNCTIONAL_CALL`), so
+the original model's counterpart of the module can be built from the original's own tensors
+(:func:`layer_from_call`), as calibration needs it.
 """
 
 from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass
 
 import torch.nn.functional as F
 from torch import fx, nn
@@ -30,13 +35,35 @@ _CHILD_NAMES = {F.batch_norm: "norm", F.layer_norm: "norm", F.group_norm: "norm"
                 F.conv2d: "conv"}
 _MODULE_TENSORS = ("running_mean", "running_var", "weight", "bias")
 
+#: The node meta key under which a module made from a functional call keeps its :class:`FunctionalCall`.
+FUNCTIONAL_CALL = "orbify_functional_call"
+
+
+@dataclass(frozen=True)
+class FunctionalCall:
+    """A functional call made into a module: the ``function``, its constant ``settings`` (argument name → value),
+    the model ``tensors`` it used (argument name → path in the model) and the ``rank`` of its input (if known)."""
+
+    function: Callable
+    settings: dict[str, object]
+    tensors: dict[str, str]
+    rank: int | None
+
+
+def layer_from_call(call: FunctionalCall, model: nn.Module) -> nn.Module:
+    """The plain module computing ``call`` with ``model``'s own tensors at the recorded paths (shared, not copied),
+    in the mode of the module that owns them: what the traced copy's module was before the conversion replaced it."""
+    tensors = {name: _tensor(model, path) for name, path in call.tensors.items()}
+    owner = model.get_submodule(next(iter(call.tensors.values())).rpartition(".")[0])
+    return _module_for(call.function, call.settings, tensors, call.rank).train(owner.training)
+
 
 def modularise_functional_layers(gm: fx.GraphModule) -> list[str]:
     """Rewrite ``gm`` in place as the module docstring says; returns the names of the new modules.
 
     A call is rewritten only when every weight, bias and statistic it uses is a ``get_attr`` node (the
-    model's own parameter or buffer) of one owner and its other arguments are constants; other calls
-    are left for the rules to judge.
+    model's own parameter or buffer) of one owner, its weight and bias are parameters and its other arguments are
+    constants; other calls are left for the rules to judge.
     """
     made = []
     for node in list(gm.graph.nodes):
@@ -46,18 +73,20 @@ def modularise_functional_layers(gm: fx.GraphModule) -> list[str]:
         owned = {name: value for name, value in arguments.items() if name in _MODULE_TENSORS and value is not None}
         settings = [value for name, value in arguments.items() if name not in _MODULE_TENSORS and name != "input"]
         if (not owned or not all(isinstance(v, fx.Node) and v.op == "get_attr" for v in owned.values())
-                or any(isinstance(value, fx.Node) for value in settings)):
+                or any(isinstance(value, fx.Node) for value in settings) or _fixed_weights(gm, owned)):
             continue
         owner = next(iter(owned.values())).target.rpartition(".")[0]
         if not owner or any(v.target.rpartition(".")[0] != owner for v in owned.values()):
             continue
-        tensors = {name: gm.get_parameter(v.target) if _is_parameter(gm, v.target) else gm.get_buffer(v.target)
-                   for name, v in owned.items()}
-        name = _rehome(gm, owner, _module_for(node, arguments, tensors), [v.target for v in owned.values()],
-                       _CHILD_NAMES[node.target])
+        tensors = {name: _tensor(gm, v.target) for name, v in owned.items()}
+        call = FunctionalCall(node.target, {name: value for name, value in arguments.items()
+                                            if name not in _MODULE_TENSORS and name != "input"},
+                              {name: v.target for name, v in owned.items()}, _rank(arguments["input"]))
+        name = _rehome(gm, owner, _module_for(node.target, call.settings, tensors, call.rank),
+                       [v.target for v in owned.values()], _CHILD_NAMES[node.target])
         with gm.graph.inserting_before(node):
             replacement = gm.graph.call_module(name, (arguments["input"],))
-        replacement.meta = dict(node.meta)
+        replacement.meta = {**node.meta, FUNCTIONAL_CALL: call}
         node.replace_all_uses_with(replacement)
         gm.graph.erase_node(node)
         for attribute in owned.values():
@@ -77,28 +106,41 @@ def _arguments(node: fx.Node) -> dict[str, object]:
     return given
 
 
-def _is_parameter(gm: fx.GraphModule, target: str) -> bool:
+def _fixed_weights(gm: nn.Module, owned: dict[str, fx.Node]) -> bool:
+    """True when a weight or bias of the call is a buffer, not a parameter: a fixed filter (a blur pool's binomial
+    kernel) that no layer learns, left for the rules to judge (:mod:`orbify.graph.fixed_filters`)."""
+    return any(name in ("weight", "bias") and not _is_parameter(gm, node.target) for name, node in owned.items())
+
+
+def _is_parameter(gm: nn.Module, target: str) -> bool:
     owner, _, attribute = target.rpartition(".")
     return attribute in gm.get_submodule(owner)._parameters
 
 
-def _module_for(node: fx.Node, arguments: dict[str, object], tensors: dict[str, object]) -> nn.Module:
-    """The plain module computing ``node``'s call, holding ``tensors`` (the very objects, not copies)."""
+def _tensor(model: nn.Module, target: str) -> object:
+    """The parameter or buffer at path ``target`` of ``model``."""
+    return model.get_parameter(target) if _is_parameter(model, target) else model.get_buffer(target)
+
+
+def _module_for(function: Callable, arguments: dict[str, object], tensors: dict[str, object],
+                rank: int | None) -> nn.Module:
+    """The plain module computing ``function`` with the constant ``arguments`` on an input of ``rank`` axes, holding
+    ``tensors`` (the very objects, not copies)."""
     weight = tensors.get("weight")
-    if node.target is F.linear:
+    if function is F.linear:
         module = nn.Linear(weight.shape[1], weight.shape[0], bias="bias" in tensors)
-    elif node.target is F.conv2d:
+    elif function is F.conv2d:
         groups = arguments.get("groups", 1)
         module = nn.Conv2d(weight.shape[1] * groups, weight.shape[0], tuple(weight.shape[2:]),
                            stride=arguments.get("stride", 1), padding=arguments.get("padding", 0),
                            dilation=arguments.get("dilation", 1), groups=groups, bias="bias" in tensors)
-    elif node.target is F.batch_norm:
+    elif function is F.batch_norm:
         features = tensors["running_mean"].numel() if "running_mean" in tensors else weight.numel()
-        kind = nn.BatchNorm1d if _rank(arguments["input"]) in (2, 3) else nn.BatchNorm2d
+        kind = nn.BatchNorm1d if rank in (2, 3) else nn.BatchNorm2d
         momentum = arguments.get("momentum", 0.1)
         module = kind(features, eps=arguments.get("eps", 1e-5), momentum=momentum, affine=weight is not None,
                       track_running_stats="running_mean" in tensors)
-    elif node.target is F.layer_norm:
+    elif function is F.layer_norm:
         module = nn.LayerNorm(arguments["normalized_shape"], eps=arguments.get("eps", 1e-5),
                               elementwise_affine=weight is not None, bias="bias" in tensors)
     else:

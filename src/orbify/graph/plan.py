@@ -14,7 +14,7 @@ from dataclasses import asdict, dataclass, field
 from typing import Protocol
 
 from orbify.symmetry.groups import Group
-from orbify.symmetry.layouts import Flat, Layout, Orbit, Permuted, Plain, Tokens, unpermuted
+from orbify.symmetry.layouts import Flat, HeadValues, Layout, Orbit, Permuted, Plain, Tokens, unpermuted
 
 BUDGETS = ("channels", "params", "fields")
 HEADS = ("invariant", "map")
@@ -163,7 +163,8 @@ def _layout_text(layout: Layout | None) -> str:
 
 def _layout_from_text(text: str) -> Layout | None:
     """The layout :func:`layout_text` wrote: ``plain(3)``, ``orbit(16)``, ``flat(orbit(16)×7×7)``,
-    ``permuted(orbit(16), 0,2,3,1)``, ``tokens(orbit(16), 1+14×14, 0,2,1)`` or ``-``."""
+    ``permuted(orbit(16), 0,2,3,1)``, ``tokens(orbit(16), 1+14×14, 0,2,1)``,
+    ``heads(orbit(16), 1+14×14, rank 4, tokens 2, channels 3)`` or ``-``."""
     if text == _NO_LAYOUT:
         return None
     match = re.fullmatch(r"(plain|orbit)\((\d+)\)", text)
@@ -178,6 +179,12 @@ def _layout_from_text(text: str) -> Layout | None:
         dims = tuple(int(d) for d in match.group(5).split(","))
         prefix, height, width = (int(match.group(i)) for i in (2, 3, 4))
         return Tokens(_layout_from_text(match.group(1)), dims, height, width, prefix)
+    match = re.fullmatch(r"heads\((.+), (\d+)\+(\d+)×(\d+), rank (\d+), tokens ([\d,]*), channels (\d+|-)\)", text)
+    if match:
+        prefix, height, width, rank = (int(match.group(i)) for i in (2, 3, 4, 5))
+        tokens = tuple(int(axis) for axis in match.group(6).split(",") if axis)
+        channels = None if match.group(7) == "-" else int(match.group(7))
+        return HeadValues(_layout_from_text(match.group(1)), height, width, prefix, rank, tokens, channels)
     match = re.fullmatch(r"permuted\((.+), ([\d,]+)\)", text)
     if match:
         return Permuted(_layout_from_text(match.group(1)), tuple(int(d) for d in match.group(2).split(",")))

@@ -23,13 +23,29 @@ import torch.nn.functional as F
 from torch import fx, nn
 
 from orbify.errors import UnsupportedOpError
-from orbify.graph.channel_order import select_channels, split_channels, take_part
+from orbify.graph.attention_heads import (
+    HEAD_FUNCTIONS,
+    HEAD_METHODS,
+    check_head_operands,
+    reshape_heads,
+    timm_attention_functions,
+)
+from orbify.graph.channel_attention import (
+    CHANNEL_ATTENTION_MODULES,
+    channel_attention_functions,
+    channel_attention_methods,
+)
+from orbify.graph.channel_order import channel_cut_functions, select_channels, split_channels, take_part
 from orbify.graph.channels_last import (
     CHANNELS_LAST_FUNCTIONS,
     CHANNELS_LAST_METHODS,
     ChannelParameter,
     tie_constant_operands,
 )
+from orbify.graph.fixed_filters import FIXED_FILTER_FUNCTIONS
+from orbify.graph.padding import PADDING_FUNCTIONS, PADDING_MODULES, same_padding_rules
+from orbify.graph.reductions import REDUCTION_FUNCTIONS, REDUCTION_METHODS
+from orbify.graph.shape_decisions import SHAPE_DECISION_FUNCTIONS
 from orbify.graph.tokens import (
     TOKEN_FUNCTIONS,
     TOKEN_METHODS,
@@ -37,13 +53,14 @@ from orbify.graph.tokens import (
     TokenParameter,
     concatenate_tokens,
     tie_token_operands,
-    token_mean,
+    timm_token_functions,
+    tokens_from_channels_last,
     tokens_from_grid,
     windowed_attention_refusal,
 )
 from orbify.graph.tracing import describe, shape
 from orbify.symmetry.groups import Group
-from orbify.symmetry.layouts import Flat, Layout, Orbit, Plain, Tokens
+from orbify.symmetry.layouts import Flat, HeadValues, Layout, Orbit, Permuted, Plain, Tokens
 
 
 @dataclass
@@ -102,6 +119,18 @@ class ConversionContext(Protocol):
     def convert_attention(self, step: Step) -> Layout:
         """An ``nn.MultiheadAttention`` over a token sequence: q, k, v and output projection tied orbit → orbit."""
 
+    def keep_original_channels(self, step: Step, channels: int) -> None:
+        """``step``'s value holds ``channels`` channels standing for the original's in its order (attention heads
+        split from, or merged into, a value holding the original's channels in order); refused otherwise."""
+
+    def add_note(self, text: str) -> None:
+        """Add a line to the plan's notes (``orbify check`` and the summary list them): how the converted graph
+        differs from the original beyond orbit averaging (a channel cut moved to an orbit boundary)."""
+
+    def convert_channel_conv(self, step: Step) -> Layout:
+        """A 1-D conv along the orbit channels of a (B, 1, C) pooled vector: the same kernel run along the orbits,
+        slot by slot (:mod:`orbify.graph.channel_attention`); the plan notes how it differs from the original."""
+
 
 Rule = Callable[[Step], "Layout | None"]
 
@@ -115,27 +144,31 @@ def passthrough(step: Step) -> Layout | None:
 
 
 def elementwise(step: Step) -> Layout | None:
-    """add / mul / sub / div of tensors: equal layouts, or one operand broadcast over channels."""
+    """add / mul / sub / div / pow / addcmul of tensors: equal layouts, or one operand broadcast over channels."""
     tensors = [(arg, step.arg_layout(arg)) for arg in step.node.args if isinstance(arg, fx.Node)]
     layouts = [layout for _, layout in tensors if layout is not None]
     if not layouts:
         return None
-    varying = [layout for arg, layout in tensors if layout is not None and not broadcasts_channel(arg)]
+    varying = [layout for arg, layout in tensors if layout is not None and not broadcasts_channel(arg, layout)]
     first = varying[0] if varying else layouts[0]
     if any(layout != first for layout in varying[1:]):
         raise step.refuse("An elementwise op combines tensors of different layouts",
                           "make both operands come from layers of the same width, or " + CONVERT_UP_TO)
     if isinstance(first, Tokens):   # position embeddings, class-token scales: tied over token and channel orbits
         tie_token_operands(step, first)
+    elif isinstance(first, HeadValues):   # inside attention: tensors along tokens or channels refused
+        check_head_operands(step, first)
     else:
         tie_constant_operands(step, first)   # parameters and constants: per-channel ones tied per orbit
     return first
 
 
-def broadcasts_channel(node: fx.Node) -> bool:
-    """True when ``node``'s value has one channel (or none) and so broadcasts over every channel."""
+def broadcasts_channel(node: fx.Node, layout: Layout | None = None) -> bool:
+    """True when ``node``'s value has one channel (or none) and so broadcasts over every channel: its channel axis
+    (axis 1, or where a channels-last ``layout`` holds it) has size one."""
     s = shape(node)
-    return s is not None and (len(s) < 2 or s[1] == 1)
+    axis = layout.channel_axis if isinstance(layout, Permuted) and not isinstance(layout, Tokens) else 1
+    return s is not None and (len(s) < 2 or s[axis] == 1)
 
 
 def concatenate(step: Step) -> Layout | None:
@@ -184,29 +217,27 @@ def reshape(step: Step) -> Layout | None:
     in_shape, out_shape = shape(step.node.args[0]), shape(step.node)
     if step.layout is None:   # a parameter shaped to broadcast
         return None
-    if isinstance(step.layout, Tokens) and in_shape != out_shape:
-        raise step.refuse(f"A reshape of a token sequence from {in_shape} to {out_shape}",
-                          "keep token sequences (B, N, C) whole, or " + CONVERT_UP_TO)
+    if isinstance(step.layout, (Tokens, HeadValues)) and in_shape != out_shape:
+        return reshape_heads(step)   # splitting channels into attention heads, or merging them back
     if in_shape is not None and out_shape is not None and in_shape[:2] == out_shape[:2]:
         if len(in_shape) == 4 and len(out_shape) == 3 and in_shape[2] == in_shape[3]:
             return tokens_from_grid(step)   # a patch map flattened into tokens
-        return step.layout
+        if _sides(in_shape) == _sides(out_shape):   # only axes of length 1 added or removed
+            return step.layout
+        raise step.refuse(f"A reshape from {in_shape} to {out_shape} rearranges the spatial grid, which the group's "
+                          "turns would not move as they move the image", "keep the grid's axes as they are, or "
+                          + CONVERT_UP_TO)
     if out_shape is not None and len(out_shape) == 2:
         return flatten(step)
+    if isinstance(step.layout, Permuted) and out_shape is not None and len(out_shape) == 3:
+        return tokens_from_channels_last(step)   # a (B, h, w, C) patch map to (B, h·w, C) tokens
     raise step.refuse(f"A reshape from {in_shape} to {out_shape} splits or shuffles channels",
                       "reshape only at orbit granularity (keep the channel axis intact), or " + CONVERT_UP_TO)
 
 
-def spatial_mean(step: Step) -> Layout | None:
-    """x.mean((2, 3)) and similar global pools over spatial axes keep the layout."""
-    dims = step.node.kwargs.get("dim", step.node.args[1] if len(step.node.args) > 1 else None)
-    rank = len(shape(step.node.args[0]) or ())
-    dims = (dims,) if isinstance(dims, int) else tuple(dims or ())
-    if isinstance(step.layout, Tokens):
-        return token_mean(step)
-    if dims and all(d % rank >= 2 for d in dims):
-        return step.layout
-    raise step.refuse(f"A reduction over dims {dims} mixes channels", CONVERT_UP_TO)
+def _sides(shape_: tuple[int, ...]) -> list[int]:
+    """The spatial axes of a channels-first shape that are longer than 1."""
+    return [side for side in shape_[2:] if side != 1]
 
 
 def no_tensor(step: Step) -> None:
@@ -245,6 +276,9 @@ def _add_library_rules() -> None:
         from timm.layers import DropPath
 
         MODULE_RULES[DropPath] = passthrough
+        FUNCTION_RULES.update(timm_attention_functions())
+        FUNCTION_RULES.update(timm_token_functions())
+        FUNCTION_RULES.update(same_padding_rules())
         _libraries_added.add("timm")
 
 
@@ -271,12 +305,13 @@ MODULE_RULES: dict[type, Rule] = {
 FUNCTION_RULES: dict[object, Rule] = {
     **{fn: passthrough for fn in (F.relu, F.relu6, F.silu, F.gelu, F.hardswish, F.hardsigmoid, F.leaky_relu, F.elu,
                                   torch.relu, torch.sigmoid, torch.tanh, F.dropout, F.max_pool2d, F.avg_pool2d,
-                                  F.adaptive_avg_pool2d, F.adaptive_max_pool2d, F.interpolate, torch.clone)},
+                                  F.adaptive_avg_pool2d, F.adaptive_max_pool2d, F.interpolate, torch.clone,
+                                  torch.rsqrt, torch.sqrt, torch.square, torch.abs, torch.exp)},
     **{fn: elementwise for fn in (operator.add, operator.iadd, operator.mul, operator.imul, operator.sub,
-                                  operator.truediv, torch.add, torch.mul, torch.sub)},
+                                  operator.truediv, torch.add, torch.mul, torch.sub, operator.pow, torch.pow,
+                                  torch.addcmul)},
     torch.cat: concatenate,
     torch.flatten: flatten,
-    torch.mean: spatial_mean,
     operator.getitem: take_part,
     torch.split: split_channels,
     torch.chunk: split_channels,
@@ -285,14 +320,14 @@ FUNCTION_RULES: dict[object, Rule] = {
 }
 
 METHOD_RULES: dict[str, Rule] = {
-    **{name: passthrough for name in ("relu", "relu_", "sigmoid", "sigmoid_", "tanh", "clone", "contiguous")},
-    **{name: elementwise for name in ("add", "add_", "mul", "mul_", "sub", "div")},
+    **{name: passthrough for name in ("relu", "relu_", "sigmoid", "sigmoid_", "tanh", "clone", "contiguous",
+                                      "rsqrt", "sqrt", "square", "abs", "exp")},
+    **{name: elementwise for name in ("add", "add_", "mul", "mul_", "sub", "div", "pow", "addcmul")},
     "flatten": flatten,
     "split": split_channels,
     "chunk": split_channels,
     "view": reshape,
     "reshape": reshape,
-    "mean": spatial_mean,
     "size": no_tensor,
     "dim": no_tensor,
 }
@@ -326,3 +361,15 @@ METHOD_RULES.update(CHANNELS_LAST_METHODS)
 MODULE_RULES.update(TOKEN_MODULES)
 FUNCTION_RULES.update(TOKEN_FUNCTIONS)   # token values first, then the channels-last and channel-part rules
 METHOD_RULES.update(TOKEN_METHODS)
+FUNCTION_RULES.update(HEAD_FUNCTIONS)   # attention written out with head reshapes
+METHOD_RULES.update(HEAD_METHODS)
+MODULE_RULES.update(CHANNEL_ATTENTION_MODULES)   # pooled channel vectors, convs along channels, weighted pooling
+FUNCTION_RULES.update(channel_attention_functions(FUNCTION_RULES))
+METHOD_RULES.update(channel_attention_methods(METHOD_RULES))
+FUNCTION_RULES.update(channel_cut_functions(FUNCTION_RULES))   # channels-last concatenation
+MODULE_RULES.update(PADDING_MODULES)   # symmetric pads; timm's "same" padding: _add_library_rules
+FUNCTION_RULES.update(PADDING_FUNCTIONS)
+FUNCTION_RULES.update(REDUCTION_FUNCTIONS)   # means, sums, variances, norms over all spatial axes or the channels
+METHOD_RULES.update(REDUCTION_METHODS)
+FUNCTION_RULES.update(FIXED_FILTER_FUNCTIONS)   # functional conv2d on a fixed buffer (blur pools)
+FUNCTION_RULES.update(SHAPE_DECISION_FUNCTIONS)   # branches on input sizes fixed while tracing

@@ -6,9 +6,12 @@ stride (the dilated backbones and atrous pyramids of segmentation models) keep e
 A transposed conv is symmetric when it has no output padding. A resampling (``F.interpolate``,
 ``nn.Upsample``) is symmetric when its sampling grid is: bilinear or bicubic to a given ``size``
 (either ``align_corners``) always is, nearest only when it enlarges by a whole factor, a ``scale_factor`` only
-when the output side is exactly the input side times the factor. Shapes are propagated on the
-``meta`` device, so checking a size costs no arithmetic but for resamplings, each of which is
-probed on one random channel of its input size (:func:`resampling_break`). When no size is exact at all,
+when the output side is exactly the input side times the factor. A TensorFlow-style "same" padding (timm's
+``pad_same``, or a "same" conv or pool kept whole) is symmetric on the sides where it pads as much before as after
+(:mod:`orbify.graph.padding`). Shapes are propagated on the ``meta`` device, so checking a size costs no
+arithmetic but for resamplings, each of which is probed on one random channel of its input size
+(:func:`resampling_break`). A model that branches on its input size is checked on the graph traced for the
+branches each size takes (:class:`SizeChecker`). When no size is exact at all,
 :meth:`SizeChecker.conflicts` names the ops that need sides no size gives them together
 (:mod:`orbify.graph.stride_conflicts`).
 """
@@ -25,7 +28,16 @@ import torch
 import torch.nn.functional as F
 from torch import fx, nn
 
-from orbify.errors import InputShapeError
+from orbify.errors import InputShapeError, TraceError
+from orbify.graph.padding import (
+    PaddingViolation,
+    is_even,
+    is_same_padding,
+    pads_same_itself,
+    same_padding_geometry,
+    same_pads,
+)
+from orbify.graph.shape_decisions import decides_by_size, shape_guard
 from orbify.graph.stride_conflicts import SizeProbe, StrideConflict, find_conflicts, no_exact_size_error
 from orbify.graph.tracing import describe, input_error, trace
 
@@ -88,7 +100,7 @@ class ResamplingViolation:
         return f"a symmetric sampling grid (at {self.size[0]}×{self.size[1]} it breaks {self.broken})"
 
 
-Violation = Union[StrideViolation, ResamplingViolation]
+Violation = Union[StrideViolation, ResamplingViolation, PaddingViolation]
 """An op that breaks equivariance at a checked input size; ``node`` names it, ``str()`` says why."""
 
 
@@ -109,6 +121,24 @@ def _geometry(node: fx.Node, module: nn.Module | None) -> tuple | None:
         dilation = node.kwargs.get("dilation", args[4]) if node.target is F.max_pool2d else None
         return _pair(kernel), _pair(stride), _pair(padding), _pair(dilation or 1)
     return None
+
+
+_CONV_ARGUMENTS = ("input", "weight", "bias", "stride", "padding", "dilation", "groups")
+
+
+def _functional_conv_geometry(node: fx.Node, env: dict) -> tuple | None:
+    """(kernel, stride, padding, dilation) of an ``F.conv2d`` call left in the graph (a blur pool's fixed filter,
+    :mod:`orbify.graph.fixed_filters`), its kernel read off the filter's value in ``env``; None for other nodes."""
+    if node.op != "call_function" or node.target is not F.conv2d:
+        return None
+    arguments = dict(zip(_CONV_ARGUMENTS, node.args))
+    arguments.update(node.kwargs)
+    weight, padding = env.get(arguments["weight"]), arguments.get("padding", 0)
+    padding = 0 if padding == "valid" else padding
+    if not isinstance(weight, torch.Tensor) or isinstance(padding, str):   # "same" pads unstrided convs only
+        return None
+    return (tuple(weight.shape[-2:]), _pair(arguments.get("stride", 1)), _pair(padding),
+            _pair(arguments.get("dilation", 1)))
 
 
 _MOVES = (("a mirror along the width", lambda t: t.flip(-1)), ("a mirror along the height", lambda t: t.flip(-2)),
@@ -179,9 +209,16 @@ class _Checker(fx.Interpreter):
         inputs = node.all_input_nodes
         x = self.env.get(inputs[0]) if inputs else None
         size = tuple(x.shape[-2:]) if isinstance(x, torch.Tensor) and x.dim() >= 3 else None
-        geometry = _geometry(node, module)
-        if geometry is not None and size is not None:
+        geometry = _geometry(node, module) or _functional_conv_geometry(node, self.env)
+        if size is not None and pads_same_itself(module):   # a "same" conv or pool kept whole: pad, then sample
+            kernel, stride, dilation = (_pair(getattr(module, key, 1)) for key in ("kernel_size", "stride", "dilation"))
+            self._check_padding(node, size, kernel, stride, dilation)
+            padded = tuple(side + sum(same_pads(side, *axis)) for side, axis in zip(size, zip(kernel, stride, dilation)))
+            self._check(node, padded, kernel, stride, (0, 0), dilation)
+        elif geometry is not None and size is not None:
             self._check(node, size, *geometry)
+        if is_same_padding(node) and size is not None:
+            self._check_padding(node, size, *same_padding_geometry(*self.fetch_args_kwargs_from_env(node)))
         if isinstance(module, nn.ConvTranspose2d) and any(_pair(module.output_padding)):
             self._add(StrideViolation(node.name, describe(node), size, _pair(module.kernel_size),
                                       _pair(module.stride), _pair(module.padding),
@@ -202,6 +239,13 @@ class _Checker(fx.Interpreter):
                 self._add(StrideViolation(node.name, describe(node), size, kernel, stride, padding, dilation))
                 return
 
+    def _check_padding(self, node: fx.Node, size: tuple[int, int], kernel: tuple[int, int],
+                       stride: tuple[int, int], dilation: tuple[int, int]) -> None:
+        """A "same" padding is exact where it pads as much before as after (:mod:`orbify.graph.padding`)."""
+        self.sides[node.name] = (size[0], stride[0])
+        if not is_even(size, kernel, stride, dilation):
+            self._add(PaddingViolation(node.name, describe(node), size, kernel, stride, dilation))
+
     def _check_resampling(self, node: fx.Node, module: nn.Module | None, output) -> None:
         args, kwargs = self.fetch_args_kwargs_from_env(node)
         resample = _resampler(module, args, kwargs)
@@ -218,41 +262,91 @@ class _Checker(fx.Interpreter):
             raise _FirstViolation
 
 
-class SizeChecker:
-    """Checks input sizes of one model; trace once, check many sizes (inputs in the dtype of its parameters)."""
+#: The side a model that decides by its input size is first traced at when no size is given: the side most image
+#: classifiers are trained at. Sizes taking other branches are traced when checked.
+DECIDING_SIDE = 224
 
-    def __init__(self, model: nn.Module, channels: int = 3):
-        gm = model if isinstance(model, fx.GraphModule) else trace(model)
-        self.gm = copy.deepcopy(gm).to("meta").eval()
+
+def _branches_otherwise(checker: _Checker, error: Exception | None) -> bool:
+    """True when a run stopped at a guard of a branch on sizes (the input takes another branch than the graph)."""
+    node = checker.current
+    return error is not None and node is not None and node.op == "call_function" and node.target is shape_guard
+
+
+class SizeChecker:
+    """Checks input sizes of one model; trace once, check many sizes (inputs in the dtype of its parameters).
+
+    A plain model that decides by its input size while tracing (:mod:`orbify.graph.shape_decisions`) is traced at
+    ``near`` (else :data:`DECIDING_SIDE`), and traced again at each checked size whose branches no graph traced so
+    far takes; a traced graph (a converted model) runs only at sizes that take its own branches.
+    """
+
+    def __init__(self, model: nn.Module, channels: int = 3, near: int | None = None):
         self.channels = channels
+        self._deciding: nn.Module | None = None   # the plain model, when it decides by its input size
+        gm = model if isinstance(model, fx.GraphModule) else self._trace(model, near or DECIDING_SIDE)
+        self.gm = copy.deepcopy(gm).to("meta").eval()
+        self._graphs = [self.gm]
         floats = (p.dtype for p in self.gm.parameters() if p.is_floating_point())
         self.dtype = next(floats, torch.float32)
         self._conflicts: dict[int, list[StrideConflict]] = {}
 
-    def violations(self, size: int | tuple[int, int], first_only: bool = False) -> list[Violation]:
-        """Strided ops and resamplings that break equivariance at this input size (empty when the size is safe)."""
-        h, w = _pair(size)
-        checker = _Checker(self.gm, first_only)
-        shape = (1, self.channels, h, w)
+    def _trace(self, model: nn.Module, side: int) -> fx.GraphModule:
+        try:
+            return trace(model)
+        except TraceError as error:
+            if not decides_by_size(error):
+                raise
+        self._deciding = model
+        return self._trace_at(model, (1, self.channels, side, side))
+
+    def _trace_at(self, model: nn.Module, shape: tuple[int, ...]) -> fx.GraphModule:
+        """``model`` traced with the branches taken at an input of ``shape``."""
+        tensor = next((p for p in model.parameters() if p.is_floating_point()), torch.empty(0))
+        return trace(model, torch.zeros(shape, dtype=tensor.dtype, device=tensor.device))
+
+    def _run(self, shape: tuple[int, ...], first_only: bool = False,
+             resampling: bool = True) -> tuple[_Checker, Exception | None]:
+        """Run an input of ``shape`` on the meta device through the first graph whose branches it takes (a model
+        deciding by its size is traced again for it when none does): the checker and the failure, if any."""
+        for gm in self._graphs:
+            checker, error = self._attempt(gm, shape, first_only, resampling)
+            if not _branches_otherwise(checker, error):
+                return checker, error
+        if self._deciding is None:
+            return checker, error
+        self._graphs.append(copy.deepcopy(self._trace_at(self._deciding, shape)).to("meta").eval())
+        return self._attempt(self._graphs[-1], shape, first_only, resampling)
+
+    def _attempt(self, gm: fx.GraphModule, shape: tuple[int, ...], first_only: bool,
+                 resampling: bool) -> tuple[_Checker, Exception | None]:
+        checker = _Checker(gm, first_only, resampling)
         try:
             with torch.no_grad():
                 checker.run(torch.empty(shape, device="meta", dtype=self.dtype))
         except _FirstViolation:
             pass
-        except Exception as error:
+        except Exception as error:  # any failure means "does not run at this size"; the caller says where
+            return checker, error
+        return checker, None
+
+    def violations(self, size: int | tuple[int, int], first_only: bool = False) -> list[Violation]:
+        """Strided ops, "same" paddings and resamplings that break equivariance at this input size (empty when the
+        size is safe)."""
+        h, w = _pair(size)
+        shape = (1, self.channels, h, w)
+        checker, error = self._run(shape, first_only)
+        if error is not None:
             fixed = fixed_size_error(checker.current, (h, w)) if checker.current is not None else None
-            raise (fixed or input_error(self.gm, shape, error)) from error
+            raise (fixed or input_error(checker.module, shape, error)) from error
         return checker.violations
 
     def probe(self, size: int, resampling: bool = True) -> SizeProbe:
         """What the square input side ``size`` does: the ops that break, where the model stops running (if it
         does) and the input side of each strided or resampling op (``resampling=False``: sides only)."""
-        checker = _Checker(self.gm, resampling=resampling)
+        checker, error = self._run((1, self.channels, size, size), resampling=resampling)
         failed = None
-        try:
-            with torch.no_grad():
-                checker.run(torch.empty((1, self.channels, size, size), device="meta", dtype=self.dtype))
-        except Exception as error:  # any failure means "does not run at this size"; where it stopped is recorded
+        if error is not None:
             lines = str(error).strip().splitlines()
             failed = (checker.current.name if checker.current is not None else "input",
                       lines[0] if lines else type(error).__name__)
@@ -345,7 +439,7 @@ def safe_sizes(model: nn.Module, near: int, count: int = 5, channels: int = 3) -
     >>> orbify.safe_sizes(model, near=32, count=3)
     [33, 29, 37]
     """
-    checker = SizeChecker(model, channels)
+    checker = SizeChecker(model, channels, near)
     found = checker.safe_sizes(near, count)
     if not found and checker.conflicts(near):
         raise no_exact_size_error(checker.conflicts(near))
@@ -381,7 +475,7 @@ def choose_input_size(model: nn.Module, usual: tuple[int, str], *, requested: in
     op samples a grid that quarter turns map onto themselves (:class:`SizeChecker`). When no size is
     exact at all, ``usual`` is kept and the choice carries the conflicts that say why.
     """
-    checker = SizeChecker(model, channels)
+    checker = SizeChecker(model, channels, requested or recipe_size or usual[0])
     if requested is not None:
         return SizeChoice(requested, "given with --input-size" + _safety(checker, requested))
     if recipe_size is not None:

@@ -24,6 +24,7 @@ The rules here are registered in :mod:`orbify.graph.rules` (which calls :func:`t
 
 from __future__ import annotations
 
+import math
 import operator
 from collections.abc import Sequence
 from dataclasses import dataclass, replace
@@ -33,11 +34,13 @@ import torch
 from torch import fx, nn
 
 from orbify.errors import UnsupportedOpError
+from orbify.graph.attention_heads import permute_heads, transpose_heads
 from orbify.graph.channel_order import Parts, take_part
 from orbify.graph.channels_last import movedim as channels_last_movedim
 from orbify.graph.channels_last import permute as channels_last_permute
+from orbify.graph.channels_last import tie_constant_operands
 from orbify.graph.tracing import describe, shape
-from orbify.symmetry.layouts import Layout, Orbit, Plain, Tokens
+from orbify.symmetry.layouts import HeadValues, Layout, Orbit, Plain, Tokens
 
 if TYPE_CHECKING:
     from orbify.graph.rules import Step
@@ -50,12 +53,14 @@ _PASSING = {"expand", "contiguous", "float", "double", "half", "to", "type"}
 @dataclass(frozen=True)
 class TokenParameter:
     """A model tensor that meets token values: the ``get_attr`` node ``attribute``, the ops ``shaping`` it on the way
-    (expand, casts: none moves its entries) and the :class:`Tokens` ``layout`` of the tokens it meets (its axes
-    aligned from the right with the tensor's)."""
+    (expand, casts: none moves its entries; or a resampling to the input's patch grid, ``resampling``) and the
+    :class:`Tokens` ``layout`` of its own tokens (its axes aligned from the right with the tensor's): those of the
+    tokens it meets, or, resampled, of the grid it was made for."""
 
     attribute: fx.Node
     shaping: tuple[fx.Node, ...]
     layout: Tokens
+    resampling: fx.Node | None = None
 
 
 # -- from a patch grid to tokens ---------------------------------------------------------------------
@@ -73,26 +78,30 @@ def tokens_from_grid(step: Step) -> Layout:
 
 
 def permute(step: Step) -> Layout | None:
-    """``permute`` of a token value keeps its tokens; other values follow the channels-last rule."""
-    if not isinstance(step.layout, Tokens):
+    """``permute`` of a token value keeps its tokens, of attention heads their token and channel axes; other values
+    follow the channels-last rule."""
+    if not isinstance(step.layout, (Tokens, HeadValues)):
         return channels_last_permute(step)
     dims = step.node.kwargs.get("dims", step.node.args[1:])
     if len(dims) == 1 and isinstance(dims[0], Sequence):
         dims = dims[0]
+    if isinstance(step.layout, HeadValues):
+        return permute_heads(step, tuple(dims))
     return _reordered(step, tuple(dims))
 
 
 def movedim(step: Step) -> Layout | None:
-    """``movedim`` of a token value: refused (permute or transpose it); other values: the channels-last rule."""
-    if isinstance(step.layout, Tokens):
+    """``movedim`` of a token value or attention heads: refused (permute or transpose it); other values: the
+    channels-last rule."""
+    if isinstance(step.layout, (Tokens, HeadValues)):
         raise step.refuse("A movedim of a token sequence", f"use permute or transpose, {_STOP_BEFORE}")
     return channels_last_movedim(step)
 
 
 def transpose(step: Step) -> Layout | None:
-    """``x.transpose(a, b)`` of a token value (B, C, N) ↔ (B, N, C)."""
+    """``x.transpose(a, b)`` of a token value (B, C, N) ↔ (B, N, C), or of attention heads."""
     layout = step.layout
-    if not isinstance(layout, Tokens):
+    if not isinstance(layout, (Tokens, HeadValues)):
         raise step.refuse("A transpose of a value that is not a token sequence",
                           f"use permute for channels-last maps, {_STOP_BEFORE}")
     node = step.node
@@ -100,6 +109,8 @@ def transpose(step: Step) -> Layout | None:
     dims = [0, 1, 2]
     if not isinstance(a, int) or not isinstance(b, int):
         raise step.refuse("A transpose whose axes are not constant", f"transpose constant axes, {_STOP_BEFORE}")
+    if isinstance(layout, HeadValues):
+        return transpose_heads(step, a, b)
     dims[a % 3], dims[b % 3] = dims[b % 3], dims[a % 3]
     return _reordered(step, tuple(dims))
 
@@ -110,6 +121,19 @@ def _reordered(step: Step, dims: tuple) -> Tokens:
         raise step.refuse(f"A permute {dims} of a token sequence that moves the batch axis or is not constant",
                           f"keep the batch axis first, {_STOP_BEFORE}")
     return replace(layout, dims=tuple(layout.dims[d % 3] for d in dims))
+
+
+def tokens_from_channels_last(step: Step) -> Tokens:
+    """``x.view(B, -1, C)`` of a channels-last patch map (B, h, w, C) (timm's ``dynamic_img_size``): a (B, N, C)
+    token sequence."""
+    layout, in_shape, out_shape = step.layout, shape(step.node.args[0]), shape(step.node)
+    if layout.dims != (0, 2, 3, 1) or tuple(out_shape) != (in_shape[0], in_shape[1] * in_shape[2], in_shape[3]):
+        raise step.refuse(f"A reshape from {tuple(in_shape)} to {tuple(out_shape)} of a channels-last map",
+                          f"flatten a (B, h, w, C) patch map to (B, h·w, C) tokens, {_STOP_BEFORE}")
+    if in_shape[1] != in_shape[2]:
+        raise step.refuse(f"A {in_shape[1]}×{in_shape[2]} patch grid is not square, so a quarter turn does not "
+                          "permute it", f"use a square input whose side is a multiple of the patch size, {_STOP_BEFORE}")
+    return Tokens(layout.inner, (0, 2, 1), in_shape[1], in_shape[2], 0)
 
 
 def expand(step: Step) -> Layout | None:
@@ -149,9 +173,9 @@ def concatenate_tokens(step: Step) -> Tokens:
 def tie_token_operands(step: Step, layout: Tokens) -> None:
     """Tie the model tensors that an elementwise op adds or multiplies into a token value of ``layout``.
 
-    A tensor that varies along the tokens and channels only (a position embedding, a per-channel scale)
-    is tied over the joint orbits of the token and channel permutations; one that varies along the batch
-    is refused; one of a single value passes.
+    A tensor that varies along the tokens (and channels) is tied over the joint orbits of the token and channel
+    permutations (a position embedding); one that varies along the channels only (a layer scale) is tied per orbit
+    as on any channels-last value; one that varies along the batch is refused; one of a single value passes.
     """
     out = shape(step.node)
     for operand in step.node.args:
@@ -161,6 +185,9 @@ def tie_token_operands(step: Step, layout: Tokens) -> None:
         offset = len(out) - len(operand_shape)
         varying = {offset + axis for axis, size in enumerate(operand_shape) if size > 1}
         if not varying:
+            continue
+        if varying == {layout.channel_axis}:   # a per-channel tensor (binary ops: the only operand without layout)
+            tie_constant_operands(step, layout)
             continue
         if not varying <= {layout.channel_axis, layout.token_axis} or \
                 (layout.token_axis in varying and out[layout.token_axis] != operand_shape[layout.token_axis - offset]):
@@ -172,19 +199,57 @@ def tie_token_operands(step: Step, layout: Tokens) -> None:
 
 def _tie(step: Step, operand: fx.Node, layout: Tokens) -> None:
     """Have the context tie the model tensor behind ``operand`` over the orbits of ``layout``'s action."""
-    node, shaping = operand, []
+    node, shaping, resampling = operand, [], None
     while node.op != "get_attr":
-        if node.op != "call_method" or node.target not in _PASSING or not isinstance(node.args[0], fx.Node):
+        if resampling is None and is_resampling(node):
+            resampling = node
+        elif node.op != "call_method" or node.target not in _PASSING or not isinstance(node.args[0], fx.Node):
             raise step.refuse(f"'{operand.name}' meets a token sequence but is not a model parameter or buffer (or "
                               "one expanded)", f"add a parameter of shape (1, N, C) or (1, 1, C), {_STOP_BEFORE}")
         shaping.append(node)
         node = node.args[0]   # the tensor; the other arguments are sizes, dtypes or devices
     own = tuple(shape(node))
     used = tuple(shape(operand))
+    if resampling is not None:   # the tensor is made for its own grid: tied there
+        layout = _embedding_grid(step, resampling, own, layout)
+        used = (*used[:-2], layout.tokens, used[-1])
     if any(size != 1 and size != used[len(used) - len(own) + axis] for axis, size in enumerate(own)):
         raise step.refuse(f"The tensor '{node.target}' (shape {own}) is reshaped on its way to the tokens",
                           f"use a tensor shaped like the tokens it meets, {_STOP_BEFORE}")
-    step.ctx.tie_token_parameter(step, TokenParameter(node, tuple(shaping), layout))
+    step.ctx.tie_token_parameter(step, TokenParameter(node, tuple(shaping), layout, resampling))
+
+
+# -- position embeddings resampled to the input's grid ------------------------------------------------
+def is_resampling(node: fx.Node) -> bool:
+    """True for timm's ``resample_abs_pos_embed`` (kept whole by the tracer): a position embedding made for one
+    patch grid, resampled to the input's (``dynamic_img_size=True``)."""
+    target = node.target if node.op == "call_function" else None
+    return (getattr(target, "__module__", None), getattr(target, "__name__", None)) == _RESAMPLING
+
+
+_RESAMPLING = ("timm.layers.pos_embed", "resample_abs_pos_embed")
+
+
+def resampled_embedding(step: Step) -> None:
+    """The resampling of a model tensor (a position embedding) to the input's patch grid: a model tensor still, tied
+    over its own grid where it meets the tokens (:func:`tie_token_operands`)."""
+    if step.layout is not None:
+        raise step.refuse("Resampling a value computed from the input as a position embedding",
+                          f"resample model tensors only, {_STOP_BEFORE}")
+    return None
+
+
+def _embedding_grid(step: Step, resampling: fx.Node, own: tuple[int, ...], layout: Tokens) -> Tokens:
+    """The tokens of a resampled embedding's own square grid (``old_size``), its fixed tokens those it meets."""
+    kwargs = dict(zip(("posemb", "new_size", "old_size", "num_prefix_tokens"), resampling.args), **resampling.kwargs)
+    prefix = kwargs.get("num_prefix_tokens", 1)
+    old = kwargs.get("old_size") or (math.isqrt(own[-2] - prefix),) * 2
+    if layout.dims != (0, 2, 1) or len(old) != 2 or old[0] != old[1] or prefix != layout.prefix or \
+            own[-2] != prefix + old[0] * old[1]:
+        raise step.refuse(f"A position embedding of shape {own} resampled from a {'×'.join(map(str, old))} grid "
+                          f"with {prefix} fixed tokens to a sequence of {layout}",
+                          f"resample a square grid's embedding to a (B, N, C) sequence, {_STOP_BEFORE}")
+    return replace(layout, height=old[0], width=old[1])
 
 
 # -- reading tokens out ------------------------------------------------------------------------------
@@ -282,6 +347,13 @@ def windowed_attention_refusal(node: fx.Node) -> UnsupportedOpError | None:
 
 def _windowed(target: object) -> bool:
     return getattr(target, "__name__", None) in WINDOWED_ATTENTION.get(getattr(target, "__module__", None), ())
+
+
+def timm_token_functions() -> dict:
+    """Rules for timm's token functions (called once timm is in use)."""
+    from timm.layers.pos_embed import resample_abs_pos_embed
+
+    return {resample_abs_pos_embed: resampled_embedding}
 
 
 TOKEN_MODULES = {nn.MultiheadAttention: attention}

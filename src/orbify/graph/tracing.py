@@ -6,6 +6,7 @@ import contextlib
 import copy
 import io
 import re
+import sys
 import traceback
 from collections.abc import Iterable
 
@@ -16,18 +17,39 @@ from torch.fx.passes.shape_prop import ShapeProp
 from orbify.common.modes import module_mode
 from orbify.errors import InputShapeError, TraceError
 from orbify.graph.functional_layers import modularise_functional_layers
+from orbify.graph.padding import fold_same_padding_kernels, same_padding_functions
+from orbify.graph.shape_decisions import TRACE_FIX, ShapeDecisions, UndecidedCondition
+from orbify.graph.standardized_convs import is_standardized_conv
 
 
 class _Tracer(fx.Tracer):
-    """Symbolic tracer that keeps the given module types (and torch's own leaves) as single nodes."""
+    """Symbolic tracer that keeps the given module types (and torch's own leaves, and weight-standardized convs:
+    :mod:`orbify.graph.standardized_convs`) as single nodes."""
 
-    def __init__(self, leaf_types: tuple[type, ...]):
-        super().__init__()
+    def __init__(self, leaf_types: tuple[type, ...], decisions: ShapeDecisions):
+        super().__init__(autowrap_functions=_resampling_functions() + same_padding_functions())
         self.leaf_types = leaf_types
+        self.decisions = decisions
         self.record_stack_traces = True
 
+    def to_bool(self, obj: fx.Proxy) -> bool:
+        """A Python branch on a traced value: decided at the example input's sizes (:mod:`orbify.graph.shape_decisions`)."""
+        return self.decisions.decide(self, obj, source_line(obj.node))
+
     def is_leaf_module(self, m: nn.Module, qualname: str) -> bool:
-        return isinstance(m, self.leaf_types) or _decides_by_mode(m) or super().is_leaf_module(m, qualname)
+        return (isinstance(m, self.leaf_types) or _decides_by_mode(m) or is_standardized_conv(m)
+                or super().is_leaf_module(m, qualname))
+
+
+def _resampling_functions() -> tuple:
+    """Functions kept as single nodes: timm's resampling of position embeddings to the input's patch grid (models
+    built with ``dynamic_img_size=True``) decides in Python from the grid's size, which tracing cannot follow; kept
+    whole, it runs at the size it is given (its rule: :mod:`orbify.graph.tokens`)."""
+    if "timm" not in sys.modules:
+        return ()
+    from timm.layers.pos_embed import resample_abs_pos_embed
+
+    return (resample_abs_pos_embed,)
 
 
 _MODE_DEPENDENT = {("torchvision.ops.stochastic_depth", "StochasticDepth"), ("timm.layers.drop", "DropPath")}
@@ -45,20 +67,32 @@ def trace(model: nn.Module, example_input: torch.Tensor | None = None,
 
     The returned GraphModule owns its submodules, so the caller may replace them without touching
     ``model``. Functional norm, linear and conv calls on the model's own tensors become modules
-    (:mod:`orbify.graph.functional_layers`). Untraceable models raise :class:`TraceError` naming the failing code.
+    (:mod:`orbify.graph.functional_layers`). A "same" padding helper stays one node (:mod:`orbify.graph.padding`);
+    a branch on a size takes the way it takes at ``example_input`` and leaves a guard that refuses sizes deciding
+    otherwise (:mod:`orbify.graph.shape_decisions`; without an example input such a model is refused). Untraceable
+    models raise :class:`TraceError` naming the failing code.
     """
     model = copy.deepcopy(model)
-    tracer = _Tracer(tuple(leaf_types))
+    decisions = ShapeDecisions(example_input)
     try:
-        graph = tracer.trace(model)
+        while True:   # each branch on sizes met for the first time is settled, then traced again
+            decisions.restart()
+            tracer = _Tracer(tuple(leaf_types), decisions)
+            try:
+                graph = tracer.trace(model)
+                break
+            except UndecidedCondition as pending:
+                decisions.settle(pending, describe(pending.node))
+    except TraceError:
+        raise
     except Exception as error:  # torch.fx raises many kinds; all mean "cannot trace"
         raise TraceError(
             f"The model cannot be traced symbolically: {type(error).__name__}: {_first_line(error)}",
             where=_user_frame(error),
-            fix="make the forward free of data-dependent control flow, mark the offending submodule as a "
-                "leaf (leaf_types=... / --leaf), or convert a traceable sub-model (e.g. the backbone)",
+            fix=TRACE_FIX,
         ) from error
     gm = fx.GraphModule(tracer.root, graph, type(model).__name__)
+    fold_same_padding_kernels(gm)
     if example_input is not None:
         propagate_shapes(gm, example_input)
     modularise_functional_layers(gm)

@@ -12,6 +12,8 @@ well for spatial tensors (``Group.act_grid``); :func:`act` applies both.
   (B, H, W, C)); g acts as on the inner layout, on the axes where they now are.
 * :class:`Tokens` — a sequence of tokens (B, N, C): fixed prefix tokens (a class token) and a patch grid
   flattened row by row; g permutes the channels as the inner layout and the grid tokens as it moves pixels.
+* :class:`HeadValues` — a value inside attention (per-head queries, keys, values, attention scores): any number
+  of axes, of which some hold the tokens of a patch grid and at most one a head's channels.
 """
 
 from __future__ import annotations
@@ -187,17 +189,68 @@ class Tokens(Permuted):
         return f"tokens({self.inner}, {self.prefix}+{self.height}×{self.width}, {','.join(map(str, self.dims))})"
 
 
+@dataclass(frozen=True)
+class HeadValues(Layout):
+    """A value inside attention over a token sequence: a tensor of ``rank`` axes, of which the ``token_axes`` hold the
+    tokens of a sequence of ``prefix`` fixed tokens and a ``height``×``width`` patch grid (as :class:`Tokens`), and
+    ``channel_axis`` (None: no axis) holds one head's channels, of layout ``inner`` (docs/design.md §5).
+
+    Per-head queries, keys and values (B, heads, N, head_dim) have one token axis and the channel axis; the
+    attention scores (B, heads, N, N) two token axes and no channel axis. Other axes (batch, heads, the q/k/v
+    index) are left in place by every group element. A head holds whole orbits, so a group element permutes the
+    slots inside every head alike: ``size`` and ``permutation`` are ``inner``'s, one head's.
+    """
+
+    inner: Layout
+    height: int
+    width: int
+    prefix: int
+    rank: int
+    token_axes: tuple[int, ...]
+    channel_axis: int | None
+
+    def size(self, group: Group) -> int:
+        return self.inner.size(group)
+
+    def permutation(self, group: Group) -> torch.Tensor:
+        return self.inner.permutation(group)
+
+    @property
+    def moved_axes(self) -> tuple[int, ...]:
+        """The axes a group element moves entries along (tokens and channels), in order."""
+        return tuple(sorted(self.token_axes + (() if self.channel_axis is None else (self.channel_axis,))))
+
+    def token_permutation(self, group: Group) -> torch.Tensor:
+        """Long tensor (|G|, N): row g gives the source token of every token of g·x (as :class:`Tokens`)."""
+        return Tokens(self.inner, (0, 2, 1), self.height, self.width, self.prefix).token_permutation(group)
+
+    def __str__(self) -> str:
+        tokens = ",".join(map(str, self.token_axes))
+        channels = "-" if self.channel_axis is None else str(self.channel_axis)
+        return (f"heads({self.inner}, {self.prefix}+{self.height}×{self.width}, rank {self.rank}, tokens {tokens}, "
+                f"channels {channels})")
+
+
 def unpermuted(layout: Layout | None) -> Layout | None:
-    """The layout of the value with its axes in the usual order: ``inner`` of a :class:`Permuted`, else ``layout``."""
-    return layout.inner if isinstance(layout, Permuted) else layout
+    """The layout of the value with its axes in the usual order: ``inner`` of a :class:`Permuted`, else ``layout``;
+    the channels of one head (``inner``) for :class:`HeadValues`."""
+    return layout.inner if isinstance(layout, (Permuted, HeadValues)) else layout
 
 
 def act(group: Group, layout: Layout, g: int, x: torch.Tensor, channel_dim: int = 1) -> torch.Tensor:
     """Apply element g to a tensor of the given layout (channels on ``channel_dim``, pixels last).
 
     A :class:`Permuted` tensor is acted on with its axes put back in order (``channel_dim`` then applies there);
-    a :class:`Tokens` one has its channels and its tokens permuted where they are.
+    a :class:`Tokens` one has its channels and its tokens permuted where they are, a :class:`HeadValues` one its
+    channel axis and every token axis.
     """
+    if isinstance(layout, HeadValues):
+        if layout.channel_axis is not None:
+            x = x.index_select(layout.channel_axis, layout.permutation(group)[g].to(x.device))
+        tokens = layout.token_permutation(group)[g].to(x.device)
+        for axis in layout.token_axes:
+            x = x.index_select(axis, tokens)
+        return x
     if isinstance(layout, Tokens):
         x = x.index_select(layout.channel_axis, layout.permutation(group)[g].to(x.device))
         return x.index_select(layout.token_axis, layout.token_permutation(group)[g].to(x.device))

@@ -17,6 +17,8 @@ from dataclasses import dataclass
 import torch
 from torch import fx
 
+from orbify.graph.reductions import is_channel_statistic
+
 
 @dataclass
 class ChannelMap:
@@ -73,17 +75,23 @@ class ChannelMap:
                          self.new)
         return ChannelMap(torch.where(picked >= 0, to_original_position[picked.clamp_min(0)], picked), inflow)
 
-    def part(self, start: int, stop: int) -> "ChannelMap":
-        """The map of channels ``start:stop`` taken out of a value holding the original's channels in the original's
-        widths (a split or slice). A channel standing for an original channel outside the part (a channel shuffle
-        upstream can move it there) stands for none in the part: it feeds no weight on (source −1)."""
+    def part(self, start: int, stop: int, original_start: int | None = None,
+             original_stop: int | None = None) -> "ChannelMap":
+        """The map of channels ``start:stop`` taken out of the value (a split or slice) where the original took its
+        channels ``original_start:original_stop`` (default: the same; they differ where the cut moved to an orbit
+        boundary). A channel standing for an original channel outside the original's part (a cut moved, or a
+        channel shuffle upstream) stands for none in the part: it feeds no weight on (source −1). An original
+        channel with copies on both sides of the cut feeds its whole weight to the copies in the part."""
+        low = start if original_start is None else original_start
+        high = stop if original_stop is None else original_stop
         source = self.source[start:stop]
-        inside = (source >= start) & (source < stop)
+        inside = (source >= low) & (source < high)
         rows, cols = self.inflow.indices()
-        kept = (cols >= start) & (cols < stop) & (rows >= start) & (rows < stop)
-        inflow = _sparse(rows[kept] - start, cols[kept] - start, self.inflow.values()[kept], stop - start,
-                         stop - start)
-        return ChannelMap(torch.where(inside, source - start, torch.full_like(source, -1)), inflow)
+        kept = (cols >= start) & (cols < stop) & (rows >= low) & (rows < high)
+        rows, cols, values = rows[kept] - low, cols[kept] - start, self.inflow.values()[kept]
+        totals = torch.zeros(high - low).index_add_(0, rows, values)
+        inflow = _sparse(rows, cols, values / totals[rows], high - low, stop - start)
+        return ChannelMap(torch.where(inside, source - low, torch.full_like(source, -1)), inflow)
 
     @property
     def unfed(self) -> int:
@@ -113,7 +121,7 @@ class ChannelMap:
 
 
 def carried_map(node: fx.Node, sources: list[ChannelMap | None], maps: Mapping[fx.Node, ChannelMap | None], *,
-                pool_order: int | None = None, positions: int | None = None, part: tuple[int, int] | None = None,
+                pool_order: int | None = None, positions: int | None = None, part: tuple[int, ...] | None = None,
                 reorder: tuple[torch.Tensor, torch.Tensor] | None = None) -> ChannelMap | None:
     """The channel map of a value that no conv or linear layer writes, from the maps of its inputs.
 
@@ -121,14 +129,19 @@ def carried_map(node: fx.Node, sources: list[ChannelMap | None], maps: Mapping[f
     ``maps`` holds the map of every earlier node. A ``torch.cat`` whose parts all have maps joins
     them (:meth:`ChannelMap.concat`); an orbit pool of ``pool_order`` slots pools the first source;
     a node that flattens a spatial map of ``positions`` positions per channel spreads it; a node
-    taking channels ``part`` (start, stop) out of a split or slice takes that part; a channel
-    ``reorder`` (converted order, original order) reorders; any other op keeps its first source's
-    map. None when no input carries channels.
+    taking channels ``part`` (start, stop, and the original's start and stop, as
+    :meth:`ChannelMap.part` takes them) out of a split or slice takes that part; a channel
+    ``reorder`` (converted order, original order) reorders; a statistic over the channels (a variance,
+    a mean) is one channel standing for the original's one; any other op keeps the map of its widest
+    source (the first of them), not that of an operand broadcast over the channels. None when no input
+    carries channels.
     """
     if not sources:
         return None
     if node.target is torch.cat and all(maps.get(part) is not None for part in node.args[0]):
         return ChannelMap.concat([maps[part] for part in node.args[0]])
+    if is_channel_statistic(node):   # one channel over all channels, in the original as here
+        return ChannelMap.identity(1)
     if pool_order is not None:
         return sources[0].pooled(pool_order)
     if positions is not None:
@@ -137,7 +150,7 @@ def carried_map(node: fx.Node, sources: list[ChannelMap | None], maps: Mapping[f
         return sources[0].part(*part)
     if reorder is not None:
         return sources[0].reordered(*reorder)
-    return sources[0]
+    return max(sources, key=lambda source: -1 if source is None else source.new)   # not a broadcast operand's
 
 
 def _sparse(rows: torch.Tensor, cols: torch.Tensor, values: torch.Tensor, original: int, new: int) -> torch.Tensor:
