@@ -258,11 +258,3 @@ def test_timm_convnext_atto_is_invariant():
     logits = converted(x)
     assert max(relative(converted(moved), logits) for moved in moved_copies(x, "c4")) < 1e-5
     assert "stages.0.blocks.0.gamma" in " ".join(plan.notes)
-
-
-def test_calibration_refuses_a_channels_last_linear():
-    torch.manual_seed(7)
-    model = ChannelsLastNet().eval()
-    images = torch.randn(4, 3, 8, 8)
-    with pytest.raises(UnsupportedOpError, match="Calibration does not refit a Linear over channels last"):
-        orbify.convert(model, "c4", example_input=images[:1], init="calibrated", calibration=images)

@@ -169,3 +169,18 @@ def test_torchvision_inception_models_convert_exactly(name, size, group):
     assert _invariance_error(converted, group, torch.randn(2, 3, size, size)) <= 1e-9
     grown = [layer.target for layer in plan.layers if any("grown" in note for note in layer.notes)]
     assert (len(grown) > 0) == (name == "inception_v3")
+
+
+@pytest.mark.parametrize("group", ["c4", "d4"])
+def test_calibration_past_its_feature_limit_carries_the_grown_kernels(group, monkeypatch):
+    """A layer with more features than the calibration refits gets the orbit average of its original weight, a 1×k
+    kernel set in the middle of its square kernel: with the limit below every layer's features, the calibrated model
+    is invariant and the grown kernel's taps lie on its middle row and column only (the 1×7 row and its turns)."""
+    monkeypatch.setattr("orbify.calibration.equations.MAX_FEATURES", 2)
+    model, x = bars_model(), torch.randn(8, 3, 13, 13)
+    calibrated, _ = convert(model, group, example_input=x[:1], init="calibrated", calibration=x)
+    assert _invariance_error(calibrated, group, x) <= TOL
+    taps = calibrated.get_submodule("wide").weight.detach().abs().sum((0, 1))
+    cross = torch.zeros(7, 7, dtype=torch.bool)
+    cross[3, :], cross[:, 3] = True, True
+    assert taps[~cross].max() == 0 and taps[cross].min() > 0

@@ -2,18 +2,24 @@
 
 from __future__ import annotations
 
+from collections.abc import Mapping
+
 import torch
 from torch.nn.utils import parametrize
 
-from orbify.calibration.paired import CONVERTED, ORIGINAL, PairedRun, moved_back
+from orbify.calibration.paired import CONVERTED, ORIGINAL, PairedRun
+from orbify.calibration.positions import moved_back
 from orbify.symmetry.groups import Group
+from orbify.symmetry.layouts import Layout
 
 
-def top1_agreement(run: PairedRun, group: Group, slots: list[int], notes: list[str]) -> float | None:
+def top1_agreement(run: PairedRun, group: Group, slots: list[int], layouts: Mapping[str, Layout | None],
+                   notes: list[str]) -> float | None:
     """Top-1 agreement of the converted model with the original's output averaged over the copies ``slots``.
 
-    Over every calibration image (every pixel, for dense outputs). None when the outputs are not
-    class scores of matching shape, or when the model returns several values (a note says so).
+    Over every calibration image (every pixel, for dense outputs). ``layouts``: the layout of every
+    value by node name (the plan's ``values``). None when the outputs are not class scores of
+    matching shape, or when the model returns several values (a note says so).
     """
     mine, theirs = run.output_name(CONVERTED), run.output_name(ORIGINAL)
     if mine is None or theirs is None:
@@ -23,8 +29,8 @@ def top1_agreement(run: PairedRun, group: Group, slots: list[int], notes: list[s
     with parametrize.cached():
         for b in range(len(run.batches)):
             ours = run.values(b, CONVERTED, 0, [mine])[mine]
-            views = [moved_back(group, run.values(b, ORIGINAL, group.inverse(s), [theirs])[theirs], s)
-                     for s in slots]
+            views = [moved_back(group, run.values(b, ORIGINAL, group.inverse(s), [theirs])[theirs], s,
+                                layouts.get(theirs)) for s in slots]
             average = torch.stack(views).mean(0)
             if ours.dim() not in (2, 4) or ours.shape != average.shape:
                 return None

@@ -10,7 +10,9 @@ set of the user's images, without labels, to bring it close to the original at o
    leave in the next layers, or by importance (:mod:`orbify.calibration.selection`); the channel
    map of every value follows (:mod:`orbify.calibration.targets`).
 2. **Norm layers** copy the statistics and affine parameters of the channels they now carry
-   (:mod:`orbify.calibration.norms`).
+   (:mod:`orbify.calibration.norms`); per-channel tensors (a layer scale), token tensors and
+   self-attention are carried again under the kept channels' maps and not refitted
+   (:mod:`orbify.calibration.kept_tensors`).
 3. **Layer by layer** in graph order, the base weights are refitted by ridge least squares so that
    the converted layer, fed with the *converted* previous layers' output, reproduces the
    original layer's output (before its batch norm) on the kept channels
@@ -20,9 +22,14 @@ set of the user's images, without labels, to bring it close to the original at o
    or into the running mean of the batch norm that follows; with ``refit_norms`` that batch
    norm's statistics are also set so its output keeps the mean and variance of the original's
    (:mod:`orbify.calibration.norms`).
+   A linear layer over the last axis of a channels-last map or a token sequence takes every pixel
+   or token as a sample, as a 1×1 conv does (:mod:`orbify.calibration.positions`).
 4. **Fallback**: a layer that cannot be refitted (transposed convs, more than
    ``MAX_FEATURES`` inputs per output) gets the orbit average of its original weight under the
    kept channels, and the report says why (:mod:`orbify.calibration.layer_weights`).
+
+Values of a layout calibration does not know (inside attention written out with head reshapes) are
+refused before anything changes (:class:`UnsupportedOpError`, naming the node).
 
 Both models run node by node over the batches (:mod:`orbify.calibration.paired`): every node runs
 once per batch and view, values are kept only while a later node needs them, and only normal
@@ -43,18 +50,22 @@ from torch.nn.utils import parametrize
 from orbify.calibration.agreement import top1_agreement
 from orbify.calibration.coordinates import NotRefittable
 from orbify.calibration.equations import MAX_FEATURES, LayerEquations
+from orbify.calibration.kept_tensors import ATTENTION_NOTE, attention_nodes, load_kept_attention, load_kept_tensors
 from orbify.calibration.layer_weights import load_orbit_average, store_solution
 from orbify.calibration.norms import absorb_fit, load_kept_norms
-from orbify.calibration.paired import CONVERTED, ORIGINAL, PairedRun, moved_back, original_graph
+from orbify.calibration.paired import CONVERTED, ORIGINAL, PairedRun, original_graph
+from orbify.calibration.positions import moved_back
 from orbify.calibration.report import LEAST_SQUARES, ORBIT_AVERAGE, CalibrationReport, LayerCalibration
 from orbify.calibration.selection import SELECTIONS, following_norm
 from orbify.calibration.targets import RefitLayers
 from orbify.common.modes import module_mode
 from orbify.common.options import check_choice
 from orbify.common.progress import ProgressBars
-from orbify.errors import DataError
+from orbify.errors import DataError, UnsupportedOpError
 from orbify.graph.plan import ConversionPlan
+from orbify.graph.tracing import describe
 from orbify.symmetry.groups import Group, parse_group
+from orbify.symmetry.layouts import Flat, Orbit, Permuted, Plain
 
 __all__ = ["CalibrationReport", "LayerCalibration", "MAX_FEATURES", "SELECTIONS", "calibrate_conversion"]
 
@@ -95,8 +106,10 @@ def calibrate_conversion(converted: fx.GraphModule, plan: ConversionPlan, origin
     Raises:
         DataError: no images, or images that are not float (N, C, H, W) tensors.
         OptionError: an unknown ``selection``.
+        UnsupportedOpError: a value of a layout calibration does not handle (nothing is changed).
     """
     check_choice("selection", selection, SELECTIONS)
+    _require_known_layouts(converted, plan)
     device = next(iter(converted.parameters()), torch.zeros(0)).device
     batches = _batches(images, batch_size, device)
     started = time.perf_counter()
@@ -122,6 +135,17 @@ def _batches(images, batch_size: int, device: torch.device) -> list[torch.Tensor
     return batches
 
 
+def _require_known_layouts(converted: fx.GraphModule, plan: ConversionPlan) -> None:
+    """Refuse values whose layout calibration does not handle (per-head values inside attention written out)."""
+    for node in converted.graph.nodes:
+        layout = plan.values.get(node.name)
+        if layout is not None and not isinstance(layout, (Plain, Orbit, Flat, Permuted)):
+            raise UnsupportedOpError(f"Calibration does not refit the layers around values of layout {layout} yet",
+                                     where=describe(node),
+                                     fix="convert with init='orbit-average' (--init orbit-average) and tune, or "
+                                         "convert only up to the node before it")
+
+
 def _note_in_plan(plan: ConversionPlan, report: CalibrationReport) -> None:
     """The report's summary in the plan's notes, and each layer's method and error in its entry's notes."""
     plan.notes.append(report.summary())
@@ -139,6 +163,7 @@ class _Calibration:
                  batches: list[torch.Tensor], transformed_copies: bool, refit_norms: bool, selection: str,
                  ridge: float, cache_bytes: int):
         self.group: Group = parse_group(plan.group)
+        self.layouts = plan.values
         self.view_graph = original_graph(converted, original)
         self.batches = batches
         self.refit_norms = refit_norms
@@ -151,16 +176,23 @@ class _Calibration:
                                      "the classifier against the original on them alone")
         self.hidden_slots = self.all_slots if transformed_copies else [0]
         self.targets = RefitLayers(converted, self.view_graph, batches, self.group, selection, self.all_slots,
-                                   self.hidden_slots)
+                                   self.hidden_slots, self.layouts)
         self.run = PairedRun(converted, self.view_graph, batches, self.group, cache_bytes)
 
     def execute(self, bars: ProgressBars) -> CalibrationReport:
-        load_kept_norms(self.targets.converted, self.view_graph, self.targets.maps, self.group.order)
+        converted, maps = self.targets.converted, self.targets.maps
+        load_kept_norms(converted, self.view_graph, maps, self.group.order)
+        load_kept_tensors(converted, self.view_graph, maps, self.layouts)
+        for node in attention_nodes(converted):
+            load_kept_attention(node, converted, self.view_graph, maps)
+            width = converted.get_submodule(node.target).embed_dim
+            self.report.layers.append(LayerCalibration(node.name, str(node.target), ORBIT_AVERAGE, width, width, 0,
+                                                       maps[node].source.tolist(), None, ATTENTION_NOTE))
         with bars:
             for stage in self.targets.stages():
                 self._fit(stage, bars)
         self.report.views = len(self.hidden_slots)
-        self.report.agreement = top1_agreement(self.run, self.group, self.all_slots, self.report.notes)
+        self.report.agreement = top1_agreement(self.run, self.group, self.all_slots, self.layouts, self.report.notes)
         self.report.recomputed = self.run.recomputed
         for key, note in self.targets.choice.notes.items():
             self.report.notes.append(f"channel class {key}: {note}")
@@ -204,7 +236,8 @@ class _Calibration:
                     given = self.run.values(b, CONVERTED, 0, inputs)
                     outputs = {s: self.run.values(b, ORIGINAL, self.group.inverse(s), names) for s in slots}
                     for node, system in systems.items():
-                        aligned = {s: moved_back(self.group, outputs[s][node.name], s) for s in system.slots}
+                        aligned = {s: moved_back(self.group, outputs[s][node.name], s, self.layouts.get(node.name))
+                                   for s in system.slots}
                         system.add(given[node.args[0].name], aligned)
                 bars.advance(task)
 

@@ -15,6 +15,11 @@ fits base rows so that chosen output rows reproduce targets taken from the origi
   copy, so all copies share the features ``u J`` and the target is the original averaged over
   the copies (with pixels moved back): the original averaged over the group.
 
+Every position is a sample: a conv's output pixels, and for a linear layer every position of
+its input but the feature axis, exactly as a 1×1 conv's pixels: the pixels of a channels-last
+map, the tokens of a sequence (their grid moved back by s like pixels,
+:mod:`orbify.calibration.positions`).
+
 Per batch only Gram matrices (features × features per conv group), feature sums and
 feature-target products are kept; the unfolded input of one batch is the largest temporary.
 The solve is ridge least squares in float64, with an intercept when the layer has a bias or
@@ -80,6 +85,7 @@ class LayerEquations:
         self.intercept = intercept
         self.targets = targets.long()
         self.is_conv = isinstance(module, nn.Conv2d)
+        self.channel_axis = 1 if self.is_conv else -1   # where the outputs hold their channels
         self.groups = module.groups if self.is_conv else 1
         out_channels = module.out_channels if self.is_conv else module.out_features
         in_channels = module.in_channels if self.is_conv else module.in_features
@@ -106,9 +112,14 @@ class LayerEquations:
 
     # -- accumulation ---------------------------------------------------------------------------
     def unfold(self, inputs: torch.Tensor) -> torch.Tensor:
-        """The features of a batch: (batch, conv groups, features, positions)."""
+        """The features of a batch: (batch, conv groups, features, positions).
+
+        A conv's positions are its output pixels; a linear layer's are every position of its input
+        but the last axis, which holds the features (one for (B, C) features; every pixel of a
+        channels-last map; every token of a sequence).
+        """
         if not self.is_conv:
-            return inputs.reshape(inputs.shape[0], 1, -1, 1)
+            return inputs.movedim(-1, 1).reshape(inputs.shape[0], 1, self.features, -1)
         conv = self.module
         mode = "constant" if conv.padding_mode == "zeros" else conv.padding_mode
         padded = F.pad(inputs, conv._reversed_padding_repeated_twice, mode=mode)
@@ -116,7 +127,8 @@ class LayerEquations:
         return patches.reshape(inputs.shape[0], self.groups, self.features, -1)
 
     def add(self, inputs: torch.Tensor, outputs: dict[int, torch.Tensor]) -> None:
-        """Accumulate one batch: the converted input, and per slot the original's aligned output (B, C, ...)."""
+        """Accumulate one batch: the converted input, and per slot the original's aligned output (a conv's
+        (B, C, H, W), a linear layer's with its channels last)."""
         u = self.unfold(inputs)
         batch, _, _, positions = u.shape
         samples = u.permute(1, 2, 0, 3).reshape(self.groups, self.features, batch * positions)   # (groups, f, n)
@@ -127,7 +139,8 @@ class LayerEquations:
         self.count += batch * positions
         targets = []
         for slot in self.slots:
-            target = outputs[slot].to(u.dtype).reshape(batch, outputs[slot].shape[1], -1)[:, self.targets]
+            output = outputs[slot].to(u.dtype).movedim(self.channel_axis, 1)
+            target = output.reshape(batch, output.shape[1], -1)[:, self.targets]
             if target.shape[-1] != positions:
                 raise NotRefittable(f"the original's output has {target.shape[-1]} positions, the refit {positions}")
             targets.append(target)

@@ -7,6 +7,7 @@ from torch import nn
 from torch.nn.utils import parametrize
 
 from orbify.calibration.equations import Solution
+from orbify.graph.square_kernels import centred_in
 from orbify.transfer.channels import ChannelMap
 from orbify.transfer.loading import carried_weight, load_bias, load_weight
 
@@ -34,9 +35,12 @@ def load_orbit_average(module: nn.Module, old: nn.Module, in_map: ChannelMap, ou
     """Load the orbit average of ``old``'s weight and bias under the kept channels into ``module``.
 
     ``in_map`` is the channel map of the layer's input, ``out_source`` the original channel of every
-    output channel. Returns the out-first weight that was loaded (before its projection).
+    output channel. A kernel grown to a square under quarter turns takes the original in its middle.
+    Returns the out-first weight that was loaded (before its projection).
     """
     weight = carried_weight(old, in_map, out_source, getattr(module, "groups", 1))
+    if isinstance(module, nn.Conv2d):
+        weight = centred_in(weight, module.kernel_size)
     load_weight(module, weight, isinstance(old, nn.ConvTranspose2d))
     load_bias(module, old, out_source)
     return weight

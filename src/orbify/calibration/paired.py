@@ -21,7 +21,11 @@ from dataclasses import dataclass, field
 import torch
 from torch import fx, nn
 
-from orbify.errors import InputShapeError
+from orbify.errors import InputShapeError, UnsupportedOpError
+from orbify.graph.channels_last import TENSOR_HOLDER
+from orbify.graph.functional_layers import FUNCTIONAL_CALL, layer_from_call
+from orbify.graph.orbit_cuts import ORIGINAL_CALL
+from orbify.graph.tracing import describe
 from orbify.layers.tied import OrbitPool
 from orbify.symmetry.groups import Group
 
@@ -35,22 +39,79 @@ def original_graph(converted: fx.GraphModule, original: nn.Module) -> fx.GraphMo
     """The original model as a GraphModule whose nodes carry the converted graph's names.
 
     The converted graph is copied, its orbit pools removed, and the copy calls ``original``'s
-    modules (shared, not copied) at the same module paths.
+    modules and reads its tensors (shared, not copied) at the same paths. Two kinds of path the
+    original lacks are resolved: a layer made from a functional call after tracing
+    (:mod:`orbify.graph.functional_layers`) is built from the original's own tensors, and a tensor
+    of the top module that the conversion moved into its holder module is read from the top module.
+    Any other path the original lacks is refused (:class:`UnsupportedOpError`).
     """
     graph = fx.Graph()
     values: dict[fx.Node, fx.Node] = {}
     output = graph.graph_copy(converted.graph, values)
     graph.output(output)
+    _restore_original_calls(graph, values)
+    root: dict[str, object] = {}
     for node in list(graph.nodes):
         if node.op == "call_module" and isinstance(converted.get_submodule(node.target), OrbitPool):
             node.replace_all_uses_with(node.args[0])
             graph.erase_node(node)
-    return fx.GraphModule(original, graph, type(original).__name__)
+        elif node.op == "call_module":
+            root[node.target] = _original_module(node, original)
+        elif node.op == "get_attr":
+            holder, _, name = node.target.rpartition(".")
+            if holder == TENSOR_HOLDER and not hasattr(original, TENSOR_HOLDER):
+                node.target = name
+            root[node.target] = _original_attribute(node, original)
+    return fx.GraphModule(root, graph, type(original).__name__)
 
 
-def moved_back(group: Group, output: torch.Tensor, slot: int) -> torch.Tensor:
-    """The original's output on the copy moved by slot⁻¹, its pixels moved back by the slot (non-maps as they are)."""
-    return group.act_grid(slot, output) if output.dim() == 4 and slot else output
+def _restore_original_calls(graph: fx.Graph, values: dict[fx.Node, fx.Node]) -> None:
+    """Give every node whose call the conversion rewrote (cut to converted widths, a part given a layer of its own)
+    the original's call again (:data:`ORIGINAL_CALL`), after the inputs it then reads."""
+    for node in list(graph.nodes):
+        if ORIGINAL_CALL in node.meta:
+            node.op, node.target, args, kwargs = node.meta[ORIGINAL_CALL]
+            node.args, node.kwargs = fx.map_arg((args, kwargs), values.__getitem__)
+            latest = node
+            for arg in node.all_input_nodes:
+                latest = arg if _after(arg, latest) else latest
+            if latest is not node:
+                latest.append(node)
+
+
+def _after(a: fx.Node, b: fx.Node) -> bool:
+    """True when node ``a`` comes after node ``b`` in their graph."""
+    node = b.next
+    while node.op != "root":
+        if node is a:
+            return True
+        node = node.next
+    return False
+
+
+def _original_module(node: fx.Node, original: nn.Module) -> nn.Module:
+    """The module of ``original`` at the node's path, or the one built from the functional call it was made from."""
+    try:
+        return original.get_submodule(node.target)
+    except AttributeError:
+        if FUNCTIONAL_CALL in node.meta:
+            return layer_from_call(node.meta[FUNCTIONAL_CALL], original)
+        raise _missing(node) from None
+
+
+def _original_attribute(node: fx.Node, original: nn.Module) -> object:
+    owner, _, name = node.target.rpartition(".")
+    try:
+        return getattr(original.get_submodule(owner), name)
+    except AttributeError:
+        raise _missing(node) from None
+
+
+def _missing(node: fx.Node) -> UnsupportedOpError:
+    return UnsupportedOpError(f"Calibration cannot find '{node.target}' in the original model to run it beside the "
+                              "converted one", where=describe(node),
+                              fix="convert with init='orbit-average' (--init orbit-average) and tune, or convert "
+                                  "only up to the node before it")
 
 
 def is_mutated_in_place(node: fx.Node) -> bool:

@@ -19,19 +19,26 @@ channels in every block when it can. Kept channels are returned in increasing or
 
 from __future__ import annotations
 
-import math
+from collections.abc import Mapping
 
 import torch
 from torch import fx, nn
 
+from orbify.calibration.positions import moved_back, positions_as_samples
 from orbify.calibration.span import OrbitCovariance, SpanRequest, greedy_orbits
 from orbify.graph.tracing import shape
 from orbify.symmetry.groups import Group
+from orbify.symmetry.layouts import Flat, Layout, Permuted
 from orbify.transfer.kinds import chooses_channels
 from orbify.transfer.loading import out_first_weight
 from orbify.transfer.matching import ChannelClasses
 
 SELECTIONS = ("importance", "reconstruction")
+
+
+def out_channels(module: nn.Module) -> int:
+    """The output channels of a conv or linear layer."""
+    return module.out_features if isinstance(module, nn.Linear) else module.out_channels
 
 
 def following_norm(node: fx.Node, gm: fx.GraphModule) -> nn.Module | None:
@@ -76,21 +83,16 @@ def span_statistics(original: fx.GraphModule, requests: dict[int, SpanRequest], 
     """The covariance of every requested class's orbit features over the calibration images (block row, slot table).
 
     The original runs on every copy s⁻¹·x of each batch; the inputs of the classes' readers are
-    moved back by s (positions become samples) and stacked as the slots of the features.
+    moved back by s (their positions, pixels or tokens, become samples) and stacked as the slots of the features.
     """
     covariances = {key: OrbitCovariance(request.channels, group, slots) for key, request in requests.items()}
     captured: dict[int, list[torch.Tensor]] = {key: [] for key in requests}
     running = {"slot": 0}
 
     def capture(key: int, value: torch.Tensor) -> None:
-        channels, slot = requests[key].channels, running["slot"]
-        if value.dim() == 2 and value.shape[1] != channels:   # a flattened square map
-            side = math.isqrt(value.shape[1] // channels)
-            value = value.reshape(value.shape[0], channels, side, side)
-        if value.dim() == 4:
-            value = group.act_grid(slot, value) if slot else value
-            value = value.permute(0, 2, 3, 1).reshape(-1, channels)
-        captured[key].append(value.detach())
+        request = requests[key]
+        value = moved_back(group, value, running["slot"], request.layout)
+        captured[key].append(positions_as_samples(value, request.channels, request.layout).detach())
 
     hooks = [original.get_submodule(request.reader).register_forward_pre_hook(
         lambda _, args, key=key: capture(key, args[0])) for key, request in requests.items()]
@@ -127,24 +129,27 @@ class ChannelChoice:
 
     ``orbits_of(node)`` gives the number of output orbits of a layer node (None for plain outputs);
     ``keep(node)`` the kept original channels of the class a node belongs to. ``slots`` are the
-    group elements whose copies of the images the ``reconstruction`` choice sees ([0]: the images only).
+    group elements whose copies of the images the ``reconstruction`` choice sees ([0]: the images only);
+    ``layouts`` the layout of every value by node name (the plan's ``values``).
     """
 
     def __init__(self, converted: fx.GraphModule, original: fx.GraphModule, layers: list[fx.Node], orbits_of,
-                 method: str, batches: list[torch.Tensor], group: Group, slots: list[int]):
+                 method: str, batches: list[torch.Tensor], group: Group, slots: list[int],
+                 layouts: Mapping[str, Layout | None]):
         self.classes = ChannelClasses(converted)
+        self.joined = _joined_by_concatenation(converted, self.classes, layouts)
         self.kept: dict[int, torch.Tensor] = {}
         self.notes: dict[int, str] = {}
         writers: dict[int, list[fx.Node]] = {}
         count: dict[int, int] = {}
         for node in layers:
             if chooses_channels(converted.get_submodule(node.target)) and orbits_of(node) is not None:
-                key = self.classes.key(node)
+                key = self.key(node)
                 writers.setdefault(key, []).append(node)
                 count[key] = orbits_of(node)
         readers: dict[int, list[fx.Node]] = {key: [] for key in writers}
         for node in layers:
-            key = self.classes.key(node.args[0])
+            key = self.key(node.args[0])
             if key in readers:
                 readers[key].append(node)
         requests = {}
@@ -153,9 +158,10 @@ class ChannelChoice:
                 # a depthwise layer reads each channel alone; the layers that mix channels judge the choice
                 mixing = [n for n in nodes if chooses_channels(original.get_submodule(n.target))]
                 if mixing:
-                    channels = shape(writers[key][0])[1]
+                    channels = out_channels(original.get_submodule(writers[key][0].target))
                     weights = sum(_reading(original.get_submodule(n.target), channels) for n in mixing)
-                    requests[key] = SpanRequest(str(mixing[0].target), channels, weights, orbits_of(mixing[0]) is None)
+                    requests[key] = SpanRequest(str(mixing[0].target), channels, weights, orbits_of(mixing[0]) is None,
+                                                layouts.get(mixing[0].args[0].name))
         covariances = span_statistics(original, requests, _first_images(batches, SELECTION_IMAGES), group,
                                       slots) if requests else {}
         for key, nodes in writers.items():
@@ -168,8 +174,43 @@ class ChannelChoice:
             if note:
                 self.notes[key] = note
 
+    def key(self, node: fx.Node) -> int:
+        """The channel class of ``node``'s value (classes joined by a concatenation along positions are one)."""
+        key = self.classes.key(node)
+        return self.joined.get(key, key)
+
     def keep(self, node: fx.Node) -> torch.Tensor:
-        return self.kept[self.classes.key(node)]
+        return self.kept[self.key(node)]
+
+
+def _joined_by_concatenation(gm: fx.GraphModule, classes: ChannelClasses,
+                             layouts: Mapping[str, Layout | None]) -> dict[int, int]:
+    """Channel classes that a concatenation along positions joins (a class token put before the patch tokens).
+
+    Such a ``torch.cat`` (along an axis that does not hold the channels) carries its parts' channels,
+    so the parts computed from the input and the result must keep the same channels; the tensors of the
+    model among the parts (a class token) take the kept channels' entries. Returns the class each joined
+    class is one with.
+    """
+    parent: dict[int, int] = {}
+
+    def root(key: int) -> int:
+        while parent.get(key, key) != key:
+            key = parent[key]
+        return key
+
+    for node in gm.graph.nodes:
+        layout = layouts.get(node.name)
+        if node.op != "call_function" or node.target is not torch.cat or layout is None or isinstance(layout, Flat):
+            continue
+        rank = len(layout.dims) if isinstance(layout, Permuted) else len(shape(node) or ())
+        dim = node.kwargs.get("dim", node.args[1] if len(node.args) > 1 else 0)
+        if rank and dim % rank != (layout.channel_axis if isinstance(layout, Permuted) else 1):
+            for part in node.args[0]:
+                if isinstance(part, fx.Node) and layouts.get(part.name) is not None and \
+                        root(classes.key(part)) != root(classes.key(node)):
+                    parent[root(classes.key(part))] = root(classes.key(node))
+    return {key: root(key) for key in parent}
 
 
 def _reading(module: nn.Module, channels: int) -> torch.Tensor:

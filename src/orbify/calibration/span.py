@@ -28,6 +28,7 @@ from dataclasses import dataclass
 import torch
 
 from orbify.symmetry.groups import Group
+from orbify.symmetry.layouts import Layout
 
 #: Samples (positions) per batch and channel class used for the covariance, at most.
 SAMPLES_PER_BATCH = 2048
@@ -35,12 +36,14 @@ SAMPLES_PER_BATCH = 2048
 
 @dataclass
 class SpanRequest:
-    """One channel class: the module path of its first reader, its width and how strongly its readers read each channel."""
+    """One channel class: the module path of its first reader, its width, how strongly its readers read each channel,
+    and the layout of the reader's input (where its channels and positions are)."""
 
     reader: str
     channels: int
     weights: torch.Tensor    # (channels,)
     slot_means: bool         # the reader sees only the mean over each orbit's slots
+    layout: Layout | None = None
 
 
 class OrbitCovariance:

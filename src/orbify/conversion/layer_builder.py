@@ -129,14 +129,10 @@ class LayerBuilder:
     def _linear_axes(self, step: Step, lin: Layout) -> Permuted | None:
         """The layout of the channels-last value a Linear reads over its last axis (None: (B, C) features).
 
-        Refuses a Linear over another axis than the channels, and calibration of one over channels last.
+        Refuses a Linear over another axis than the channels.
         """
         rank = len(shape(step.node.all_input_nodes[0]) or ())
         if isinstance(lin, Permuted) and lin.channel_axis == rank - 1:
-            if self.state.init == "calibrated":
-                raise step.refuse("Calibration does not refit a Linear over channels last yet",
-                                  "convert with init='orbit-average' (--init orbit-average) and tune, or convert "
-                                  "only up to the node before it")
             return lin
         if rank > 2 or isinstance(lin, Permuted) or not isinstance(lin, (Plain, Orbit, Flat)):
             raise step.refuse("A Linear over an axis that does not hold the channels",
