@@ -16,7 +16,7 @@ from orbify.verification.measure import count_macs, count_params, state_dict_byt
 # (torchvision.models.get_model_weights(name).DEFAULT.meta, read without a download): "num_params", and "_ops",
 # the GFLOPS column of torchvision's model table, which counts multiply-adds at 224×224, to three decimals.
 PUBLISHED = ["resnet18", "resnet50", "vgg11_bn", "mobilenet_v2", "mobilenet_v3_small", "densenet121",
-             "efficientnet_b0", "regnet_x_400mf", "squeezenet1_1", "alexnet"]
+             "efficientnet_b0", "regnet_x_400mf", "squeezenet1_1", "alexnet", "vit_b_16", "vit_b_32"]
 PUBLISHED_ROUNDING_GMACS = 0.0005  # half a unit of the third decimal
 
 
@@ -37,6 +37,24 @@ def test_macs_of_a_conv_and_a_linear_layer():
     example = torch.zeros(2, 3, 8, 8)
     expected = 2 * (8 * 6 * 6 * 3 * 3 * 3 + 8 * 6 * 6 * 5)
     assert count_macs(model, example) == expected
+
+
+class _SelfAttention(nn.Module):
+    def __init__(self, width: int, heads: int):
+        super().__init__()
+        self.attention = nn.MultiheadAttention(width, heads, batch_first=True)
+
+    def forward(self, x):
+        return self.attention(x, x, x, need_weights=False)[0]
+
+
+def test_macs_of_multi_head_attention_in_eval_mode():
+    # Common practice (no source): self-attention over L tokens of width E makes 4·L·E² multiply-adds in its
+    # q, k, v and output projections and 2·L²·E in q·kᵀ and attention·v, whatever the number of heads. In eval mode
+    # without gradients torch runs a fused path the counter does not see into; the count must not drop.
+    tokens, width = 10, 16
+    expected = 4 * tokens * width * width + 2 * tokens * tokens * width
+    assert count_macs(_SelfAttention(width, 4).eval(), torch.randn(1, tokens, width)) == expected
 
 
 def test_count_macs_accepts_several_inputs_and_keeps_the_training_mode():

@@ -3,6 +3,7 @@
 ``load_example_model()`` returns the trained tile classifier; ``make_tiles`` draws fresh tiles,
 upright (like the training set) or at any angle (the field). ``load_example_segmenter()`` returns the
 trained segmentation model; ``make_scenes`` draws scenes of several particles with their masks.
+``load_example_vit()`` returns the trained vision transformer, a tile classifier for tiles of 32 pixels.
 """
 
 from __future__ import annotations
@@ -18,16 +19,20 @@ from orbify.example.data import CLASS_NAMES, make_tiles
 from orbify.example.model import build_example_cnn
 from orbify.example.scenes import SEGMENT_CLASSES, make_scenes
 from orbify.example.segment_model import build_example_segmenter
+from orbify.example.vit_model import VIT_TILE_SIZE, build_example_vit
 
 __all__ = [
-    "CLASS_NAMES", "SEGMENT_CLASSES", "SEGMENT_WEIGHTS_FILE", "WEIGHTS_FILE", "build_example_cnn",
-    "build_example_segmenter", "load_example_model", "load_example_segmenter", "make_scenes", "make_tiles",
+    "CLASS_NAMES", "SEGMENT_CLASSES", "SEGMENT_WEIGHTS_FILE", "VIT_TILE_SIZE", "VIT_WEIGHTS_FILE", "WEIGHTS_FILE",
+    "build_example_cnn", "build_example_segmenter", "build_example_vit", "load_example_model",
+    "load_example_segmenter", "load_example_vit", "make_scenes", "make_tiles",
 ]
 
 WEIGHTS_FILE = "weights.pt"
 """Name of the shipped state dict of the tile classifier inside the ``orbify.example`` package."""
 SEGMENT_WEIGHTS_FILE = "segment_weights.pt"
 """Name of the shipped state dict of the segmentation model inside the ``orbify.example`` package."""
+VIT_WEIGHTS_FILE = "vit_weights.pt"
+"""Name of the shipped state dict of the vision transformer inside the ``orbify.example`` package."""
 
 
 def load_example_model() -> nn.Module:
@@ -48,6 +53,16 @@ def load_example_segmenter() -> nn.Module:
     """
     return _load_shipped(SEGMENT_WEIGHTS_FILE, build_example_segmenter, "the example segmenter",
                          "orbify.example.train_segment")
+
+
+def load_example_vit() -> nn.Module:
+    """The example vision transformer with the shipped weights, in eval mode; it reads tiles of
+    :data:`VIT_TILE_SIZE` = 32 pixels (``make_tiles(n, size=VIT_TILE_SIZE)``).
+
+    Read like :func:`load_example_model`, from ``orbify/example/vit_weights.pt``; raises
+    :class:`orbify.errors.CheckpointError` when the file is missing, damaged or does not fit.
+    """
+    return _load_shipped(VIT_WEIGHTS_FILE, build_example_vit, "the example ViT", "orbify.example.train_vit")
 
 
 def _load_shipped(file: str, build: Callable[[], nn.Module], what: str, trainer: str) -> nn.Module:

@@ -10,9 +10,9 @@ A SOURCE is one of, tried in this order:
 ``timm:NAME``
     An architecture of the timm library, built with ``pretrained=False`` (never downloaded;
     :mod:`orbify.files.timm_source`); needs ``orbify[timm]``.
-``example``, ``example-segment``
-    The bundled example CNN (:mod:`orbify.example`), or the bundled segmentation model, with its
-    shipped weights; rebuilt from a reference, the architecture alone.
+``example``, ``example-segment``, ``example-vit``
+    The bundled example CNN (:mod:`orbify.example`), the bundled segmentation model, or the bundled
+    vision transformer, with its shipped weights; rebuilt from a reference, the architecture alone.
 a path to an existing file
     First offered to the file loaders added with :func:`register_file_loader` (the extension
     point for orbify's own file formats), then read as a whole model pickled with
@@ -53,23 +53,26 @@ from orbify.files.weights import load_weights_file
 
 EXAMPLE_SOURCE = "example"
 EXAMPLE_SEGMENT_SOURCE = "example-segment"
+EXAMPLE_VIT_SOURCE = "example-vit"
 BUNDLED_FACTORIES = {
     EXAMPLE_SOURCE: "orbify.example.model:build_example_cnn",
     EXAMPLE_SEGMENT_SOURCE: "orbify.example.segment_model:build_example_segmenter",
+    EXAMPLE_VIT_SOURCE: "orbify.example.vit_model:build_example_vit",
     "orbify.example.model:build_example_cnn": "orbify.example.model:build_example_cnn",
     "orbify.example:load_example_model": "orbify.example:load_example_model",
 }
-"""References to orbify's own examples, with the factory each calls: ``example``, ``example-segment`` and the two
-factory references that files written before ``example`` was a reference of its own record."""
+"""References to orbify's own examples, with the factory each calls: ``example``, ``example-segment``, ``example-vit``
+and the two factory references that files written before ``example`` was a reference of its own record."""
 _BUNDLED_WITH_WEIGHTS = {
     EXAMPLE_SOURCE: "orbify.example:load_example_model",
     EXAMPLE_SEGMENT_SOURCE: "orbify.example:load_example_segmenter",
+    EXAMPLE_VIT_SOURCE: "orbify.example:load_example_vit",
 }
 """The factory that builds each bundled example with its shipped weights (a SOURCE the user types)."""
 FACTORY_PATTERN = re.compile(r"^(?P<module>[A-Za-z_][\w.]*):(?P<attribute>[A-Za-z_][\w.]*)$")
 _ACCEPTED_FORMS = (
-    "give torchvision:NAME (e.g. torchvision:resnet18), timm:NAME, example, example-segment, package.module:factory, "
-    "or the path of a model file"
+    "give torchvision:NAME (e.g. torchvision:resnet18), timm:NAME, example, example-segment, example-vit, "
+    "package.module:factory, or the path of a model file"
 )
 
 IMAGENET_SIZE = 224
@@ -80,6 +83,9 @@ EXAMPLE_SIZE = 33
 EXAMPLE_SEGMENT_SIZE = 49
 """The scene side of the bundled segmentation example, the SOURCE ``example-segment`` (see
 :mod:`orbify.example.scenes`)."""
+EXAMPLE_VIT_SIZE = 32
+"""The tile side of the bundled vision transformer, the SOURCE ``example-vit``: a multiple of its patch (4; see
+:mod:`orbify.example.vit_model`)."""
 
 
 @dataclass(frozen=True)
@@ -168,7 +174,7 @@ def rebuild(reference: str, *, working_directory: bool = False) -> nn.Module:
     else:
         raise SourceError(
             f"{reference!r} is not a reference that can be rebuilt",
-            fix="use torchvision:NAME, timm:NAME, example, example-segment or package.module:factory",
+            fix="use torchvision:NAME, timm:NAME, example, example-segment, example-vit or package.module:factory",
         )
     return module.eval()
 
@@ -176,7 +182,8 @@ def rebuild(reference: str, *, working_directory: bool = False) -> nn.Module:
 def usual_input_size(source: str) -> tuple[int, str]:
     """The input side the architecture a SOURCE names is usually run at, with what that guess rests on.
 
-    ``example`` → 33 (its tile size); ``example-segment`` → 49 (its scene size); ``torchvision:NAME`` (with or
+    ``example`` → 33 (its tile size); ``example-segment`` → 49 (its scene size); ``example-vit`` → 32
+    (its tile size, a multiple of its patch); ``torchvision:NAME`` (with or
     without arguments) → 224 (ImageNet backbones); anything else → 224, the most common size of pretrained
     backbones.
     """
@@ -184,6 +191,8 @@ def usual_input_size(source: str) -> tuple[int, str]:
         return EXAMPLE_SIZE, "the bundled example's tile size"
     if source == EXAMPLE_SEGMENT_SOURCE:
         return EXAMPLE_SEGMENT_SIZE, "the bundled segmentation example's scene size"
+    if source == EXAMPLE_VIT_SOURCE:
+        return EXAMPLE_VIT_SIZE, "the bundled vision transformer's tile size"
     if source.startswith(TORCHVISION_PREFIX):
         return IMAGENET_SIZE, "the usual input of torchvision's ImageNet backbones"
     if source.startswith(TIMM_PREFIX):

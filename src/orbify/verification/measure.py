@@ -9,7 +9,7 @@ from contextlib import contextmanager
 import torch
 from torch import nn
 from torch.nn.utils import parametrize
-from torch.utils.flop_counter import FlopCounterMode
+from torch.utils.flop_counter import FlopCounterMode, sdpa_flop_count
 
 from orbify.common.modes import module_mode
 
@@ -46,11 +46,34 @@ def inference_flops(module: nn.Module) -> Iterator[FlopCounterMode]:
     Inside the block ``module`` is in eval mode (its mode is restored afterwards), gradients are
     off, and every parametrized tensor has been computed once into the ``parametrize.cached()``
     cache, so tied weights are expanded before counting starts and not counted.
+
+    Attention is counted whole: ``nn.MultiheadAttention``'s fused fast path (which the counter does
+    not see into) is off inside the block, and torch's CPU attention kernel, for which the counter
+    has no formula, is counted by the formula of its other attention kernels.
     """
-    with module_mode(module, training=False), torch.no_grad(), parametrize.cached():
+    with module_mode(module, training=False), torch.no_grad(), parametrize.cached(), _attention_fast_path(False):
         expand_parametrized_tensors(module)
-        with FlopCounterMode(display=False) as counter:
+        with FlopCounterMode(display=False, custom_mapping=_ATTENTION_FLOPS) as counter:
             yield counter
+
+
+def _cpu_attention_flops(query, key, value, *args, out_shape=None, **kwargs) -> int:
+    """FLOPs of torch's CPU attention kernel: its q·kᵀ and attention·v products (``sdpa_flop_count``)."""
+    return sdpa_flop_count(query, key, value)
+
+
+_ATTENTION_FLOPS = {torch.ops.aten._scaled_dot_product_flash_attention_for_cpu: _cpu_attention_flops}
+
+
+@contextmanager
+def _attention_fast_path(enabled: bool) -> Iterator[None]:
+    """``nn.MultiheadAttention``'s fused inference path switched on or off inside the block."""
+    before = torch.backends.mha.get_fastpath_enabled()
+    torch.backends.mha.set_fastpath_enabled(enabled)
+    try:
+        yield
+    finally:
+        torch.backends.mha.set_fastpath_enabled(before)
 
 
 def expand_parametrized_tensors(module: nn.Module) -> None:
