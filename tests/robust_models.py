@@ -20,7 +20,7 @@ class Branchy(nn.Module):
 
 
 class Shuffle(nn.Module):
-    """A channel shuffle whose groups of 3 channels cut orbits of 4 (c4): it cannot be made to move whole orbits."""
+    """A channel shuffle of 12 channels, 3 orbits under c4, in 4 groups: it cannot be made to move whole orbits."""
 
     def __init__(self):
         super().__init__()

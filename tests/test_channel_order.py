@@ -9,6 +9,7 @@ import torch
 from torch import nn
 
 from orbify import convert, parse_group
+from orbify.layers.shuffles import shuffle_blocks
 from orbify.transfer.channels import ChannelMap
 
 SIZE = 9
@@ -26,6 +27,7 @@ class ShuffleUnits(nn.Module):
 
     def __init__(self, width: int = 16):
         super().__init__()
+        self.width = width
         self.left, self.right = nn.Conv2d(1, width, 3, padding=1), nn.Conv2d(1, width, 3, padding=1)
         self.branch = nn.Sequential(nn.Conv2d(width, width, 1), nn.BatchNorm2d(width), nn.ReLU(),
                                     nn.Conv2d(width, width, 3, padding=1, groups=width))
@@ -35,7 +37,7 @@ class ShuffleUnits(nn.Module):
         y = _shuffle(torch.cat([self.left(x), self.right(x)], 1))
         kept, changed = y.chunk(2, dim=1)
         y = _shuffle(torch.cat([kept, self.branch(changed)], 1))
-        first, second = y.split(16, dim=1)
+        first, second = y.split(self.width, dim=1)
         return self.head(torch.cat([second, first], 1))
 
 
@@ -73,6 +75,28 @@ def test_shuffles_and_splits_convert_exactly(group):
     assert any("2 channel shuffles rewritten" in note for note in plan.notes)
     assert _invariance_error(converted, group, torch.randn(3, 1, SIZE, SIZE)) < 1e-12
     assert _invariance_error(original, group, torch.randn(3, 1, SIZE, SIZE)) > 1e-3   # the check can fail
+
+
+@pytest.mark.parametrize("group", ["c4", "d4"])
+def test_shuffles_of_halves_that_are_not_whole_orbits_of_the_original_convert_exactly(group):
+    """Branches of 6 channels (not a multiple of |G|) round to whole orbits; the shuffle then moves whole orbits of the
+    converted value (as torchvision's shufflenet_v2_x1_0, 116 channels in halves of 58, needs)."""
+    torch.manual_seed(0)
+    original = _with_statistics(ShuffleUnits(width=6))
+    converted, plan = convert(original, group, example_input=torch.zeros(1, 1, SIZE, SIZE))
+    assert any("2 channel shuffles rewritten" in note for note in plan.notes)
+    assert _invariance_error(converted, group, torch.randn(3, 1, SIZE, SIZE)) < 1e-12
+
+
+@pytest.mark.parametrize("groups, width", [(2, 1), (3, 1), (2, 4), (4, 2)])
+def test_the_block_shuffle_is_shufflenets_shuffle_of_blocks(groups, width):
+    """Against numpy: ShuffleNet's shuffle of C channels in g groups is reshape (g, C/g), transpose, flatten; the
+    block shuffle applies it to blocks of ``width`` channels, each block kept in order."""
+    channels = 24
+    x = torch.randn(2, channels, 3, 3)
+    block_order = np.arange(channels // width).reshape(groups, -1).T.reshape(-1)
+    order = (block_order[:, None] * width + np.arange(width)).reshape(-1)
+    np.testing.assert_array_equal(shuffle_blocks(x, groups, width).numpy(), x.numpy()[:, order])
 
 
 def test_under_the_trivial_group_the_rewritten_shuffles_compute_the_original():

@@ -51,7 +51,8 @@ SMALL_SAFE = {
     "squeezenet1_0": 35, "squeezenet1_1": 31, "alexnet": 63,
     "fcn_resnet50": 9, "fcn_resnet101": 9, "deeplabv3_resnet50": 9, "deeplabv3_resnet101": 9,
     "deeplabv3_mobilenet_v3_large": 17, "lraspp_mobilenet_v3_large": 17,
-    "convnext_tiny": 32, "convnext_small": 32, "shufflenet_v2_x0_5": 33, "shufflenet_v2_x1_5": 33,
+    "convnext_tiny": 32, "convnext_small": 32, "shufflenet_v2_x0_5": 33, "shufflenet_v2_x1_0": 33,
+    "shufflenet_v2_x1_5": 33, "shufflenet_v2_x2_0": 33,
 }
 # The bundled example, converted at its recipe's own size (33 pixels, its tiles' size).
 AT_RECIPE_SIZE = {"example", "orbify.example.model:build_example_cnn"}

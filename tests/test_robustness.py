@@ -40,7 +40,7 @@ def test_untraceable_model(tmp_path):
     assert not (tmp_path / "x.orb").exists()
 
 
-@pytest.mark.parametrize("factory,node", [("shuffle", "graph node 'view'"), ("channel_split", "graph node 'getitem'")])
+@pytest.mark.parametrize("factory,node", [("shuffle", "graph node 'shuffle_blocks'"), ("channel_split", "graph node 'getitem'")])
 def test_unsupported_channel_reshapes(tmp_path, factory, node):
     code, out = run("convert", f"robust_models:{factory}", "--input-size", "9", "-g", "c4", "-o", tmp_path / "x.orb")
     assert_refused(code, out, node, "robust_models.py", "stop")

@@ -50,9 +50,9 @@ test_time_average.__test__ = False   # a helper, not a test
 # -- embed ---------------------------------------------------------------------------------------
 
 # resnet18 and mobilenet_v2: torchvision's model definitions, random weights; 33 is a safe size for both
-# (checked in test_convert.py). d4 under `fields` makes resnet18 eight times wider: slow.
-EMBED_CASES = [("resnet18", "c4"), pytest.param("resnet18", "d4", marks=pytest.mark.slow),
-               ("mobilenet_v2", "c4"), pytest.param("mobilenet_v2", "d4", marks=pytest.mark.slow)]
+# (checked in test_convert.py). d4 under `fields` makes a model eight times wider: resnet18 then takes 15 s, so d4
+# is checked on mobilenet_v2 only.
+EMBED_CASES = [("resnet18", "c4"), ("mobilenet_v2", "c4"), pytest.param("mobilenet_v2", "d4", marks=pytest.mark.slow)]
 
 
 @pytest.mark.parametrize("name,group_name", EMBED_CASES)

@@ -9,7 +9,7 @@ from torch import fx
 from orbify.conversion.graph_edits import insert_pool
 from orbify.conversion.state import ConversionState
 from orbify.errors import OptionError
-from orbify.graph.channel_order import ORIGINAL_ORDER, Parts, part_bounds
+from orbify.graph.channel_order import Parts, part_bounds, shuffle_orders
 from orbify.graph.rules import CONVERT_UP_TO, ConversionContext, Step, no_tensor, rule_for
 from orbify.graph.tracing import shape
 from orbify.layers.tied import OrbitPool
@@ -84,8 +84,7 @@ class GraphWalk:
         pools = node.op == "call_module" and isinstance(state.module(node), OrbitPool)
         flattens = isinstance(layout, Flat) and not isinstance(state.layouts[node.all_input_nodes[0]], Flat)
         part = part_bounds(node, state.layouts) if node.target is operator.getitem else None
-        reorder = ((state.gm.get_buffer(node.args[2].target), node.meta[ORIGINAL_ORDER])
-                   if ORIGINAL_ORDER in node.meta else None)
+        reorder = shuffle_orders(node, sources[0].new)
         return carried_map(node, sources, maps, pool_order=state.group.order if pools else None,
                            positions=layout.height * layout.width if flattens else None, part=part, reorder=reorder)
 

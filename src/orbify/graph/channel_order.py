@@ -7,9 +7,10 @@ slots in order:
 * **Channel shuffles** (``x.view(B, g, C/g, H, W).transpose(1, 2).reshape(B, C, H, W)``, as in
   ShuffleNet) interleave single channels and so tear orbits apart. Which original channel sits in
   which converted position is free, though (channel maps carry weights over any order, §8), so
-  :func:`shuffle_orbits` rewrites each shuffle before the walk into the same shuffle of *orbits*:
-  ``torch.index_select(x, 1, order)`` with a constant ``order`` that moves whole orbits, the
-  original's channel order kept in the node's meta for the channel maps.
+  :func:`shuffle_orbits` rewrites each shuffle before the walk into the same shuffle of *orbits*
+  (:func:`orbify.layers.shuffles.shuffle_blocks`), the original's channel order kept in the node's
+  meta for the channel maps. Only the converted value's orbits must split evenly into the groups,
+  not the original's channels: 116 channels in 2 groups become 2 × 15 orbits under c4.
 * **split / chunk** along the channel axis (dim 1, or the last axis of a channels-last value) and
   **slices** ``x[:, a:b]`` cut the converted value at whole orbits: where the original's cut falls
   inside an orbit (or the budget rounded the width), the converted value is cut at an orbit boundary
@@ -48,6 +49,7 @@ from orbify.graph.orbit_cuts import (
     split_parts,
 )
 from orbify.graph.tracing import shape
+from orbify.layers.shuffles import shuffle_blocks
 from orbify.symmetry.layouts import HeadValues, Layout, Orbit, Permuted, Plain, unpermuted
 
 ORIGINAL_ORDER = "orbify_original_channel_order"
@@ -88,8 +90,8 @@ class Parts(Layout):
 
 
 def shuffle_orbits(gm: fx.GraphModule, order: int) -> int:
-    """Rewrite every channel shuffle of ``gm`` whose groups hold whole orbits of ``order`` slots into the shuffle of
-    orbits (see the module docstring); returns how many. Others are left for the rules to refuse."""
+    """Rewrite every channel shuffle of ``gm`` into the shuffle of orbits of ``order`` slots (see the module
+    docstring); returns how many. The rule :func:`shuffle_channels` checks that the orbits split evenly."""
     rewritten = 0
     for node in list(gm.graph.nodes):
         chain = _shuffle_chain(node)
@@ -97,15 +99,10 @@ def shuffle_orbits(gm: fx.GraphModule, order: int) -> int:
             continue
         split_view, last = chain[0], chain[-1]
         channels, groups = shape(split_view.args[0])[1], shape(split_view)[1]
-        if channels % (groups * order):
-            continue
-        name = f"orbit_shuffle_{rewritten}"
-        gm.register_buffer(name, _shuffle(channels // order, groups, order))
         with gm.graph.inserting_before(last):
-            index = gm.graph.get_attr(name)
-            select = gm.graph.call_function(torch.index_select, (split_view.args[0], 1, index))
-        select.meta = {**last.meta, ORIGINAL_ORDER: _shuffle(channels, groups, 1)}
-        last.replace_all_uses_with(select)
+            shuffle = gm.graph.call_function(shuffle_blocks, (split_view.args[0], groups, order))
+        shuffle.meta = {**last.meta, ORIGINAL_ORDER: shuffle_order(channels, groups, 1)}
+        last.replace_all_uses_with(shuffle)
         for dead in reversed(chain):
             gm.graph.erase_node(dead)
         rewritten += 1
@@ -114,7 +111,16 @@ def shuffle_orbits(gm: fx.GraphModule, order: int) -> int:
     return rewritten
 
 
-def _shuffle(units: int, groups: int, width: int) -> torch.Tensor:
+def shuffle_orders(node: fx.Node, channels: int) -> tuple[torch.Tensor, torch.Tensor] | None:
+    """(converted order, original order) of a rewritten shuffle whose converted input holds ``channels`` channels
+    (out position ← in channel, as :meth:`orbify.transfer.channels.ChannelMap.reordered` takes them), else None."""
+    if ORIGINAL_ORDER not in node.meta:
+        return None
+    _, groups, width = node.args
+    return shuffle_order(channels // width, groups, width), node.meta[ORIGINAL_ORDER]
+
+
+def shuffle_order(units: int, groups: int, width: int) -> torch.Tensor:
     """The channel order of shuffling ``units`` blocks of ``width`` channels in ``groups`` groups: out ← in."""
     blocks = torch.arange(units).view(groups, units // groups).t().reshape(-1)
     return (blocks[:, None] * width + torch.arange(width)).reshape(-1)
@@ -150,11 +156,26 @@ def _swaps_1_2(node: fx.Node) -> bool:
 
 # -- rules -------------------------------------------------------------------------------------------
 def select_channels(step) -> Layout | None:
-    """``torch.index_select(x, 1, order)`` of a rewritten shuffle: orbits move whole, so the layout is kept."""
+    """``torch.index_select``: refused (the indices may tear orbits apart)."""
+    raise step.refuse("Selecting channels by index", "select whole orbits only (a channel shuffle is rewritten for "
+                      f"you to move whole orbits), or {_CONVERT_UP_TO}")
+
+
+def shuffle_channels(step) -> Layout | None:
+    """A rewritten channel shuffle (:func:`shuffle_orbits`): whole orbits move, so an orbit layout is kept when its
+    orbits split evenly into the groups; plain channels are shuffled one by one, as in the original."""
     node, layout = step.node, step.layout
-    if ORIGINAL_ORDER not in node.meta or node.args[1] not in (1, -3):
-        raise step.refuse("Selecting channels by index", "select whole orbits only (a channel shuffle whose groups "
-                          "hold whole orbits is rewritten for you)")
+    source, groups, _ = node.args
+    inner = unpermuted(layout)
+    if isinstance(layout, (Permuted, HeadValues)) or not isinstance(inner, (Orbit, Plain)):
+        raise step.refuse(f"A channel shuffle of a {layout} value", _CONVERT_UP_TO)
+    if isinstance(inner, Plain):
+        node.args = (source, groups, 1)
+    elif inner.orbits % groups:
+        raise step.refuse(f"A channel shuffle in {groups} groups of a value of {inner.orbits} orbits (the converted "
+                          f"width of its {shape(source)[1]} channels) moves parts of orbits",
+                          f"give the layers writing it widths that make a multiple of {groups} orbits of "
+                          f"{step.ctx.group.order} slots (another budget may), or {_CONVERT_UP_TO}")
     return layout
 
 
@@ -300,7 +321,7 @@ def channel_slice(node: fx.Node) -> tuple[int, int] | None:
 def cuts_channels(node: fx.Node) -> bool:
     """True for a split, chunk, channel slice or channel selection (a rewritten shuffle): an op whose output
     channels are a part, or a reordering, of its input's."""
-    return (node.target in ("split", "chunk", torch.split, torch.chunk, torch.index_select)
+    return (node.target in ("split", "chunk", torch.split, torch.chunk, shuffle_blocks)
             or (node.target is operator.getitem and channel_slice(node) is not None))
 
 

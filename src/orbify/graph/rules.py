@@ -35,7 +35,13 @@ from orbify.graph.channel_attention import (
     channel_attention_functions,
     channel_attention_methods,
 )
-from orbify.graph.channel_order import channel_cut_functions, select_channels, split_channels, take_part
+from orbify.graph.channel_order import (
+    channel_cut_functions,
+    select_channels,
+    shuffle_channels,
+    split_channels,
+    take_part,
+)
 from orbify.graph.channels_last import (
     CHANNELS_LAST_FUNCTIONS,
     CHANNELS_LAST_METHODS,
@@ -59,6 +65,7 @@ from orbify.graph.tokens import (
     windowed_attention_refusal,
 )
 from orbify.graph.tracing import describe, shape
+from orbify.layers.shuffles import shuffle_blocks
 from orbify.symmetry.groups import Group
 from orbify.symmetry.layouts import Flat, HeadValues, Layout, Orbit, Permuted, Plain, Tokens
 
@@ -316,6 +323,7 @@ FUNCTION_RULES: dict[object, Rule] = {
     torch.split: split_channels,
     torch.chunk: split_channels,
     torch.index_select: select_channels,
+    shuffle_blocks: shuffle_channels,
     getattr: no_tensor,
 }
 
