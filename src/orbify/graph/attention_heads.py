@@ -35,6 +35,7 @@ from torch import fx
 
 from orbify.errors import WidthError
 from orbify.graph.channel_order import Parts
+from orbify.graph.channels_last import constant_operands
 from orbify.graph.tracing import describe, shape
 from orbify.layers.tied import head_width_fix, head_width_refusal
 from orbify.symmetry.layouts import HeadValues, Layout, Orbit, Plain, Tokens
@@ -197,13 +198,7 @@ def softmax(step: Step) -> Layout:
 def check_head_operands(step: Step, layout: HeadValues) -> None:
     """Refuse a tensor not computed from the input that an elementwise op combines with attention values and that
     varies along an axis the group moves (a relative position bias); a scale per head passes."""
-    out = shape(step.node)
-    for operand in step.node.args:
-        if not isinstance(operand, fx.Node) or step.arg_layout(operand) is not None or shape(operand) is None:
-            continue
-        operand_shape = tuple(shape(operand))
-        offset = len(out) - len(operand_shape)
-        varying = {offset + axis for axis, size in enumerate(operand_shape) if size > 1}
+    for operand, operand_shape, varying in constant_operands(step):
         if varying & set(layout.moved_axes):
             raise step.refuse(f"'{operand.name}' (shape {operand_shape}), a tensor not computed from the input, varies "
                               "along the tokens or a head's channels (a position bias would have to move with them)",

@@ -20,7 +20,7 @@ this module does not import it.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
@@ -104,6 +104,18 @@ def _reordered(step: Step, dims: Sequence) -> Layout | None:
 
 
 # -- tensors that are not computed from the input --------------------------------------------------
+def constant_operands(step: Step) -> Iterator[tuple[fx.Node, tuple[int, ...], set[int]]]:
+    """The operands of ``step``'s op not computed from the input (parameters, buffers, constants: no layout) with
+    their shapes and the axes of the op's output along which each varies (size > 1, broadcasting aligned right)."""
+    out = shape(step.node)
+    for operand in step.node.args:
+        if not isinstance(operand, fx.Node) or step.arg_layout(operand) is not None or shape(operand) is None:
+            continue
+        operand_shape = tuple(shape(operand))
+        offset = len(out) - len(operand_shape)
+        yield operand, operand_shape, {offset + axis for axis, size in enumerate(operand_shape) if size > 1}
+
+
 def tie_constant_operands(step: Step, layout: Layout | None) -> None:
     """Check the operands without a layout of an elementwise op whose output has ``layout``.
 
@@ -112,16 +124,10 @@ def tie_constant_operands(step: Step, layout: Layout | None) -> None:
     nothing, on orbit channels the context ties it per orbit (``step.ctx.tie_channel_parameter``). One
     that varies over pixels, or over the features of a flattened map, is refused.
     """
-    out = shape(step.node)
-    if layout is None or out is None:
+    if layout is None or shape(step.node) is None:
         return
     channel_axis = layout.channel_axis if isinstance(layout, Permuted) else 1
-    for operand in step.node.args:
-        if not isinstance(operand, fx.Node) or step.arg_layout(operand) is not None or shape(operand) is None:
-            continue
-        operand_shape = tuple(shape(operand))
-        offset = len(out) - len(operand_shape)
-        varying = {offset + axis for axis, size in enumerate(operand_shape) if size > 1}
+    for operand, operand_shape, varying in constant_operands(step):
         if not varying:
             continue
         if varying != {channel_axis} or isinstance(layout, Flat):

@@ -36,9 +36,9 @@ from torch import fx, nn
 from orbify.errors import UnsupportedOpError
 from orbify.graph.attention_heads import permute_heads, transpose_heads
 from orbify.graph.channel_order import Parts, take_part
+from orbify.graph.channels_last import constant_operands, tie_constant_operands
 from orbify.graph.channels_last import movedim as channels_last_movedim
 from orbify.graph.channels_last import permute as channels_last_permute
-from orbify.graph.channels_last import tie_constant_operands
 from orbify.graph.tracing import describe, shape
 from orbify.symmetry.layouts import HeadValues, Layout, Orbit, Plain, Tokens
 
@@ -178,14 +178,10 @@ def tie_token_operands(step: Step, layout: Tokens) -> None:
     as on any channels-last value; one that varies along the batch is refused; one of a single value passes.
     """
     out = shape(step.node)
-    for operand in step.node.args:
-        if not isinstance(operand, fx.Node) or step.arg_layout(operand) is not None or shape(operand) is None:
-            continue
-        operand_shape = tuple(shape(operand))
-        offset = len(out) - len(operand_shape)
-        varying = {offset + axis for axis, size in enumerate(operand_shape) if size > 1}
+    for operand, operand_shape, varying in constant_operands(step):
         if not varying:
             continue
+        offset = len(out) - len(operand_shape)
         if varying == {layout.channel_axis}:   # a per-channel tensor (binary ops: the only operand without layout)
             tie_constant_operands(step, layout)
             continue
