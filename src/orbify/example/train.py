@@ -128,30 +128,44 @@ def refuse_existing_output(path: Path, force: bool, where: str = "orbify.example
         )
 
 
-app = typer.Typer(add_completion=False, help="Train the bundled example CNN on upright tiles.")
+def tile_trainer_app(train: Callable[..., TrainingResult], *, what: str, command: str, default_out: str,
+                     defaults: tuple[int, int, int, int]) -> typer.Typer:
+    """The command line of a trainer of a bundled tile classifier: ``train`` (called with ``seed``, ``epochs``,
+    ``num_tiles`` and ``evaluation_tiles``) run from ``--seed``, ``--epochs``, ``--tiles`` and ``--eval-tiles``
+    (``defaults``, in that order), the weights written to ``--out`` (refused when it exists, unless ``--force``)
+    and both accuracies printed. ``what`` names the model in the help, ``command`` the module in errors."""
+    seed_default, epochs_default, tiles_default, evaluation_default = defaults
+    app = typer.Typer(add_completion=False, help=f"Train the bundled example {what} on upright tiles.")
+
+    @app.command()
+    def main(
+        out: Path = typer.Option(Path(default_out), "--out", help="Where to write the state dict."),
+        seed: int = typer.Option(seed_default, "--seed", help="Seed for tiles, initialisation and batch order."),
+        epochs: int = typer.Option(epochs_default, "--epochs", help="Passes over the training tiles."),
+        tiles: int = typer.Option(tiles_default, "--tiles", help="Number of upright training tiles."),
+        eval_tiles: int = typer.Option(evaluation_default, "--eval-tiles",
+                                       help="Fresh tiles per split for the accuracies."),
+        force: bool = typer.Option(False, "--force", help="Replace OUT if it exists."),
+    ) -> None:
+        """Train on upright tiles, print upright and any-angle accuracy, save the weights."""
+        try:
+            refuse_existing_output(out, force, where=f"{command} --out")
+            result = train(seed=seed, epochs=epochs, num_tiles=tiles, evaluation_tiles=eval_tiles)
+            save_torch(result.model.state_dict(), out, force=force)
+        except OrbifyError as error:
+            typer.echo(f"error: {error}", err=True)
+            raise typer.Exit(error.exit_code) from None
+        typer.echo(f"trained in {result.seconds:.1f} s on {tiles} upright tiles ({epochs} epochs, seed {seed})")
+        typer.echo(f"accuracy upright:    {result.upright_accuracy:.3f}")
+        typer.echo(f"accuracy any angle:  {result.any_accuracy:.3f}")
+        typer.echo(f"weights written to {out}")
+
+    return app
 
 
-@app.command()
-def main(
-    out: Path = typer.Option(Path("example-weights.pt"), "--out", help="Where to write the state dict."),
-    seed: int = typer.Option(DEFAULT_SEED, "--seed", help="Seed for tiles, initialisation and batch order."),
-    epochs: int = typer.Option(DEFAULT_EPOCHS, "--epochs", help="Passes over the training tiles."),
-    tiles: int = typer.Option(DEFAULT_TILES, "--tiles", help="Number of upright training tiles."),
-    eval_tiles: int = typer.Option(EVALUATION_TILES, "--eval-tiles", help="Fresh tiles per split for the accuracies."),
-    force: bool = typer.Option(False, "--force", help="Replace OUT if it exists."),
-) -> None:
-    """Train on upright tiles, print upright and any-angle accuracy, save the weights."""
-    try:
-        refuse_existing_output(out, force)
-        result = train_example_model(seed=seed, epochs=epochs, num_tiles=tiles, evaluation_tiles=eval_tiles)
-        save_torch(result.model.state_dict(), out, force=force)
-    except OrbifyError as error:
-        typer.echo(f"error: {error}", err=True)
-        raise typer.Exit(error.exit_code) from None
-    typer.echo(f"trained in {result.seconds:.1f} s on {tiles} upright tiles ({epochs} epochs, seed {seed})")
-    typer.echo(f"accuracy upright:    {result.upright_accuracy:.3f}")
-    typer.echo(f"accuracy any angle:  {result.any_accuracy:.3f}")
-    typer.echo(f"weights written to {out}")
+app = tile_trainer_app(train_example_model, what="CNN", command="orbify.example.train",
+                       default_out="example-weights.pt",
+                       defaults=(DEFAULT_SEED, DEFAULT_EPOCHS, DEFAULT_TILES, EVALUATION_TILES))
 
 
 if __name__ == "__main__":

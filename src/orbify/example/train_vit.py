@@ -12,14 +12,9 @@ repeatable bit for bit.
 from __future__ import annotations
 
 import time
-from pathlib import Path
 
-import typer
-
-from orbify.common.safe_io import save_torch
-from orbify.errors import OrbifyError
 from orbify.example.data import make_tiles
-from orbify.example.train import TrainingResult, accuracy, check_settings, fit, refuse_existing_output
+from orbify.example.train import TrainingResult, accuracy, check_settings, fit, tile_trainer_app
 from orbify.example.vit_model import VIT_TILE_SIZE, build_example_vit
 
 DEFAULT_SEED = 0
@@ -50,31 +45,8 @@ def train_example_vit(*, seed: int = DEFAULT_SEED, epochs: int = DEFAULT_EPOCHS,
     return TrainingResult(model, upright, any_angle, time.perf_counter() - started)
 
 
-app = typer.Typer(add_completion=False, help="Train the bundled example ViT on upright tiles.")
-
-
-@app.command()
-def main(
-    out: Path = typer.Option(Path("vit-weights.pt"), "--out", help="Where to write the state dict."),
-    seed: int = typer.Option(DEFAULT_SEED, "--seed", help="Seed for tiles, initialisation and batch order."),
-    epochs: int = typer.Option(DEFAULT_EPOCHS, "--epochs", help="Passes over the training tiles."),
-    tiles: int = typer.Option(DEFAULT_TILES, "--tiles", help="Number of upright training tiles."),
-    eval_tiles: int = typer.Option(EVALUATION_TILES, "--eval-tiles", help="Fresh tiles per split for the accuracies."),
-    force: bool = typer.Option(False, "--force", help="Replace OUT if it exists."),
-) -> None:
-    """Train on upright tiles, print upright and any-angle accuracy, save the weights."""
-    try:
-        refuse_existing_output(out, force, where="orbify.example.train_vit --out")
-        result = train_example_vit(seed=seed, epochs=epochs, num_tiles=tiles, evaluation_tiles=eval_tiles)
-        save_torch(result.model.state_dict(), out, force=force)
-    except OrbifyError as error:
-        typer.echo(f"error: {error}", err=True)
-        raise typer.Exit(error.exit_code) from None
-    typer.echo(f"trained in {result.seconds:.1f} s on {tiles} upright tiles of {VIT_TILE_SIZE} px ({epochs} epochs, "
-               f"seed {seed})")
-    typer.echo(f"accuracy upright:    {result.upright_accuracy:.3f}")
-    typer.echo(f"accuracy any angle:  {result.any_accuracy:.3f}")
-    typer.echo(f"weights written to {out}")
+app = tile_trainer_app(train_example_vit, what="ViT", command="orbify.example.train_vit", default_out="vit-weights.pt",
+                       defaults=(DEFAULT_SEED, DEFAULT_EPOCHS, DEFAULT_TILES, EVALUATION_TILES))
 
 
 if __name__ == "__main__":
