@@ -9,65 +9,18 @@ fresh processes it measures memory in.
 
 from __future__ import annotations
 
-import importlib.util
 import json
-import sys
-from pathlib import Path
 
 import pytest
 import torch
 import torchvision
-import typer
 
+from benchmark_scripts import load_script
 from orbify import parse_group
 from orbify.experiments.digits import load_digit_splits
 from orbify.tuning.teacher import VIEW_COMBINATIONS
 
-BENCHMARKS = Path(__file__).resolve().parent.parent / "benchmarks"
-
 pytestmark = pytest.mark.slow
-
-
-def load_script(name: str):
-    """Import ``benchmarks/<name>.py`` as a fresh module (run_quick puts the folder on ``sys.path`` for the scripts'
-    ``import harness``)."""
-    spec = importlib.util.spec_from_file_location(f"benchmark_{name}", BENCHMARKS / f"{name}.py")
-    module = importlib.util.module_from_spec(spec)
-    sys.modules[spec.name] = module        # dataclasses look their module up there
-    spec.loader.exec_module(module)
-    return module
-
-
-@pytest.fixture
-def run_quick(capsys, monkeypatch):
-    """``run_quick(script, *options)``: run ``benchmarks/<script> --quick *options`` in this process as its command
-    line would (typer or argparse) and return its standard output.
-
-    The scripts pin torch to one thread here, as every test process does (tests/conftest.py), instead of their
-    two: two threads in each of the suite's two workers oversubscribe two cores (measured on a busy 2-core
-    machine: calibrated_digits.py --quick took 254 s of CPU with two threads, 18 s with one). The thread
-    count is restored afterwards."""
-    threads = torch.get_num_threads()
-    monkeypatch.syspath_prepend(str(BENCHMARKS))
-    harness = importlib.import_module("harness")     # the module the scripts' ``import harness`` finds
-    pin = harness.fix_threads
-    monkeypatch.setattr(harness, "fix_threads", lambda threads=1: pin(1))
-
-    def run(script: str, *options: str) -> str:
-        module = load_script(Path(script).stem)
-        capsys.readouterr()
-        arguments = ["--quick", *options]
-        if script == "finer_rotations.py":            # argparse reads sys.argv
-            monkeypatch.setattr(sys, "argv", [script, *arguments])
-            module.main()
-        else:                                        # typer.run(main), without exiting
-            app = typer.Typer(add_completion=False)
-            app.command()(module.main)
-            typer.main.get_command(app).main(arguments, prog_name=script, standalone_mode=False)
-        return capsys.readouterr().out
-
-    yield run
-    torch.set_num_threads(threads)
 
 
 def rows(output: str, first_cell: str) -> list[list[str]]:

@@ -20,6 +20,7 @@ import orbify
 from orbify.calibration.report import LEAST_SQUARES, ORBIT_AVERAGE
 from orbify.errors import UnsupportedOpError
 from orbify.graph.channels_last import TENSOR_HOLDER
+from small_vit import TinyViT
 
 RIDGE = 1e-3   # calibrate_conversion's default ridge, relative to the mean diagonal of the Gram matrix
 
@@ -168,42 +169,11 @@ def test_a_calibrated_channels_last_block_is_invariant_and_closer_to_the_average
     assert torch.equal(calibrated.norm.weight.detach(), model.norm.weight.detach()[kept])
 
 
-# -- a small ViT written here (as tests/test_vision_transformers.py builds one) ------------------------------------
-class Block(nn.Module):
-    def __init__(self, width: int, heads: int):
-        super().__init__()
-        self.norm1, self.norm2 = nn.LayerNorm(width), nn.LayerNorm(width)
-        self.attention = nn.MultiheadAttention(width, heads, batch_first=True)
-        self.mlp = nn.Sequential(nn.Linear(width, 2 * width), nn.GELU(), nn.Linear(2 * width, width))
-
-    def forward(self, x):
-        y = self.norm1(x)
-        x = x + self.attention(y, y, y, need_weights=False)[0]
-        return x + self.mlp(self.norm2(x))
-
-
-class TinyViT(nn.Module):
-    """Patch 4, two blocks, a class token and learned position embeddings, the class token's features classified."""
-
-    def __init__(self, width: int = 32, heads: int = 2, size: int = 16, classes: int = 5):
-        super().__init__()
-        self.patches = nn.Conv2d(3, width, 4, stride=4)
-        self.class_token = nn.Parameter(torch.randn(1, 1, width))
-        self.positions = nn.Parameter(0.1 * torch.randn(1, 1 + (size // 4) ** 2, width))
-        self.blocks = nn.Sequential(Block(width, heads), Block(width, heads))
-        self.norm = nn.LayerNorm(width)
-        self.head = nn.Linear(width, classes)
-
-    def forward(self, x):
-        x = self.patches(x).flatten(2).transpose(1, 2)
-        x = torch.cat([self.class_token.expand(x.shape[0], -1, -1), x], dim=1) + self.positions
-        return self.head(self.norm(self.blocks(x))[:, 0])
-
-
+# -- a small ViT (tests/small_vit.py) ------------------------------------------------------------------------------
 @pytest.fixture(scope="module")
 def calibrated_vit():
     torch.manual_seed(3)
-    model = TinyViT().double().eval()
+    model = TinyViT(position_scale=0.1).double().eval()
     images = torch.randn(32, 3, 16, 16, generator=torch.Generator().manual_seed(4), dtype=torch.float64)
     return model, images, *calibrated_and_averaged(model, "c4", images)
 

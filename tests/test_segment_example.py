@@ -3,12 +3,9 @@ the ``example-segment`` source, ``orbify demo --task segment`` and benchmarks/se
 
 from __future__ import annotations
 
-import importlib.util
 import json
 import os
-import sys
 from importlib import resources
-from pathlib import Path
 
 import numpy as np
 import pytest
@@ -16,7 +13,6 @@ import scipy.ndimage
 import sklearn.metrics
 import torch
 import torch.fx
-import typer
 from torch.utils.flop_counter import FlopCounterMode
 from typer.testing import CliRunner
 
@@ -37,7 +33,6 @@ from orbify.example.train_segment import segmentation_scores, train_example_segm
 from orbify.files.consent import names_only_registered_code
 from orbify.files.sources import EXAMPLE_SEGMENT_SIZE, EXAMPLE_SEGMENT_SOURCE, load_source, rebuild, usual_input_size
 
-BENCHMARKS = Path(__file__).resolve().parent.parent / "benchmarks"
 ROD = 1 + CLASS_NAMES.index("rod")
 TOLERANCE = 1e-5
 
@@ -267,23 +262,9 @@ def test_demo_refuses_an_unknown_task(tmp_path):
 
 # --- the benchmark's quick mode --------------------------------------------------------------------------------------
 @pytest.mark.slow
-def test_segmentation_benchmark_quick(capsys, monkeypatch):
+def test_segmentation_benchmark_quick(run_quick):
     """benchmarks/segmentation.py --quick, run in this process as its command line would, on one thread."""
-    monkeypatch.syspath_prepend(str(BENCHMARKS))
-    threads = torch.get_num_threads()
-    harness = importlib.import_module("harness")
-    monkeypatch.setattr(harness, "fix_threads", lambda threads=1: torch.set_num_threads(1))
-    spec = importlib.util.spec_from_file_location("benchmark_segmentation", BENCHMARKS / "segmentation.py")
-    module = importlib.util.module_from_spec(spec)
-    monkeypatch.setitem(sys.modules, spec.name, module)
-    spec.loader.exec_module(module)
-    command = typer.Typer(add_completion=False)
-    command.command()(module.main)
-    try:
-        typer.main.get_command(command).main(["--quick"], prog_name="segmentation.py", standalone_mode=False)
-    finally:
-        torch.set_num_threads(threads)
-    output = capsys.readouterr().out
+    output = run_quick("segmentation.py")
     rows = {cells[0]: cells for cells in (
         [cell.strip() for cell in line.strip().strip("|").split("|")] for line in output.splitlines()
         if line.lstrip().startswith("|"))}

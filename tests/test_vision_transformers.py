@@ -18,6 +18,7 @@ import orbify
 from orbify.errors import UnsupportedOpError, WidthError
 from orbify.symmetry.groups import parse_group
 from orbify.symmetry.layouts import Orbit, Plain, Tokens, act
+from small_vit import Block, TinyViT
 
 
 def numpy_move(grid: np.ndarray, turns: int, mirror: bool) -> np.ndarray:
@@ -73,38 +74,7 @@ def test_channels_first_tokens_move_like_the_sequence():
         assert torch.equal(act(group, channels_first, g, x.transpose(1, 2)), act(group, sequence, g, x).transpose(1, 2))
 
 
-# -- a small ViT written here ------------------------------------------------------------------------------
-class Block(nn.Module):
-    def __init__(self, width: int, heads: int):
-        super().__init__()
-        self.norm1, self.norm2 = nn.LayerNorm(width), nn.LayerNorm(width)
-        self.attention = nn.MultiheadAttention(width, heads, batch_first=True)
-        self.mlp = nn.Sequential(nn.Linear(width, 2 * width), nn.GELU(), nn.Linear(2 * width, width))
-
-    def forward(self, x):
-        y = self.norm1(x)
-        x = x + self.attention(y, y, y, need_weights=False)[0]
-        return x + self.mlp(self.norm2(x))
-
-
-class TinyViT(nn.Module):
-    """Patch 4, two blocks, a class token and learned position embeddings (flatten(2).transpose(1, 2) to tokens)."""
-
-    def __init__(self, width: int = 32, heads: int = 2, size: int = 16, classes: int = 5):
-        super().__init__()
-        self.patches = nn.Conv2d(3, width, 4, stride=4)
-        self.class_token = nn.Parameter(torch.randn(1, 1, width))
-        self.positions = nn.Parameter(torch.randn(1, 1 + (size // 4) ** 2, width))
-        self.blocks = nn.Sequential(Block(width, heads), Block(width, heads))
-        self.norm = nn.LayerNorm(width)
-        self.head = nn.Linear(width, classes)
-
-    def forward(self, x):
-        x = self.patches(x).flatten(2).transpose(1, 2)
-        x = torch.cat([self.class_token.expand(x.shape[0], -1, -1), x], dim=1) + self.positions
-        return self.head(self.norm(self.blocks(x))[:, 0])
-
-
+# -- a small ViT (tests/small_vit.py) ------------------------------------------------------------------------------
 def tiny_vit() -> nn.Module:
     """The factory a saved file names (rebuilt on loading)."""
     torch.manual_seed(0)

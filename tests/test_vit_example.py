@@ -8,16 +8,11 @@ and the multiply-accumulates per tile.
 
 from __future__ import annotations
 
-import importlib
-import importlib.util
 import os
-import sys
 from importlib import resources
-from pathlib import Path
 
 import pytest
 import torch
-import typer
 from typer.testing import CliRunner
 
 import orbify
@@ -30,7 +25,6 @@ from orbify.example.vit_model import VIT_SHAPE
 from orbify.files.consent import names_only_registered_code
 from orbify.files.sources import EXAMPLE_VIT_SIZE, EXAMPLE_VIT_SOURCE, load_source, rebuild, usual_input_size
 
-BENCHMARKS = Path(__file__).resolve().parent.parent / "benchmarks"
 TOLERANCE = 1e-5
 
 
@@ -136,23 +130,9 @@ def example_vit_macs() -> int:
 
 
 # --- the benchmark -------------------------------------------------------------------------------------------------
-def test_vit_benchmark_quick(capsys, monkeypatch):
+def test_vit_benchmark_quick(run_quick):
     """benchmarks/vit_tiles.py --quick, run in this process as its command line would, on one thread."""
-    monkeypatch.syspath_prepend(str(BENCHMARKS))
-    threads = torch.get_num_threads()
-    harness = importlib.import_module("harness")
-    monkeypatch.setattr(harness, "fix_threads", lambda threads=1: torch.set_num_threads(1))
-    spec = importlib.util.spec_from_file_location("benchmark_vit_tiles", BENCHMARKS / "vit_tiles.py")
-    module = importlib.util.module_from_spec(spec)
-    monkeypatch.setitem(sys.modules, spec.name, module)
-    spec.loader.exec_module(module)
-    command = typer.Typer(add_completion=False)
-    command.command()(module.main)
-    try:
-        typer.main.get_command(command).main(["--quick"], prog_name="vit_tiles.py", standalone_mode=False)
-    finally:
-        torch.set_num_threads(threads)
-    output = capsys.readouterr().out
+    output = run_quick("vit_tiles.py")
     rows: dict[str, list[str]] = {}           # the first table's row of each model
     elements: dict[str, list[str]] = {}       # the per-element table's
     for line in output.split("### Upright tiles")[1].splitlines():     # the tables after the settings
