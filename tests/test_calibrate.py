@@ -203,10 +203,12 @@ def test_bad_calibration_input_is_refused():
 
 # -- large backbones ---------------------------------------------------------------------------
 @pytest.mark.slow
-@pytest.mark.parametrize("name", ["resnet18", "mobilenet_v2"])
+@pytest.mark.parametrize("name", ["resnet18"])
 def test_torchvision_backbones_calibrate_every_layer_and_stay_invariant(name):
-    """Small images and few of them (benchmarks/calibrated_digits.py --backbones times 256 images of 65 px): every
-    layer of the torchvision definition is refitted, none falls back, and the result is invariant."""
+    """Small images and few of them (benchmarks/calibrated_digits.py --backbones times resnet18 and mobilenet_v2 on
+    256 images of 65 px): every layer of the torchvision definition is refitted, its 3×3 convs of 512 inputs
+    (4,608 features) included, none falls back, and the result is invariant. Depthwise, grouped and
+    squeeze-excitation layers: test_depthwise_grouped_excitation_and_heads_are_refitted_and_stay_invariant."""
     torchvision = pytest.importorskip("torchvision")
     torch.manual_seed(0)
     original = getattr(torchvision.models, name)(weights=None, num_classes=10)   # random weights
