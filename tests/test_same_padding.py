@@ -215,6 +215,27 @@ def test_asymmetric_pads_are_refused_naming_the_node(model, node):
     assert f"graph node {node}" in message and "one side of an axis more than the other" in message
 
 
+class PaddedVector(nn.Module):
+    """A pad of pooled channels: on a (B, C) value the last axis holds the orbits' slots, not a spatial axis."""
+
+    def __init__(self):
+        super().__init__()
+        self.conv, self.fc = nn.Conv2d(3, 8, 3, padding=1), nn.Linear(10, 2)
+
+    def forward(self, x):
+        return self.fc(F.pad(self.conv(x).mean((2, 3)), (1, 1)))
+
+
+@pytest.mark.parametrize("group", ["c2", "c4"])
+def test_a_pad_of_orbit_channels_is_refused_naming_the_node(group):
+    """Before: under c2 the converted graph failed at run time with a raw reshape error, under c4 the message spoke of
+    width and height."""
+    with pytest.raises(UnsupportedOpError) as info:
+        orbify.convert(PaddedVector().eval(), group, example_input=torch.randn(1, 3, 9, 9))
+    message = str(info.value)
+    assert "graph node 'pad'" in message and "last two axes are not the spatial ones" in message
+
+
 # -- branches on the input size ---------------------------------------------------------------------------------------
 def vgg_like() -> nn.Module:
     """Two stride-2 convs and timm's VGG head, which pools a map smaller than its 7×7 kernel up to 7×7 first."""

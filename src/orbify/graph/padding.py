@@ -166,8 +166,9 @@ def same_padding(step: Step) -> Layout | None:
 
 
 def fixed_pad(step: Step) -> Layout | None:
-    """``F.pad`` and the pad modules: a symmetric pad keeps the layout; an asymmetric one is refused."""
+    """``F.pad`` and the pad modules: a symmetric pad of a map keeps the layout; an asymmetric one is refused."""
     node = step.node
+    layout = _channels_first(step, "A pad")
     if node.op == "call_module":
         pads = tuple(node.graph.owning_module.get_submodule(node.target).padding)   # (left, right, top, bottom)
     else:
@@ -181,7 +182,7 @@ def fixed_pad(step: Step) -> Layout | None:
     if why:
         raise step.refuse(f"A pad (left, right, top, bottom) = {pads[:4]} {why}, so no input size makes it commute "
                           "with the group's motions", _ASYMMETRIC_FIX)
-    return _channels_first(step, "A pad")
+    return layout
 
 
 def _asymmetry(pads: tuple[int, ...], group: Group) -> str:
@@ -196,8 +197,12 @@ def _asymmetry(pads: tuple[int, ...], group: Group) -> str:
 
 
 def _channels_first(step: Step, what: str) -> Layout | None:
-    """The layout of a map whose last two axes are the spatial ones; refused for channels-last values and tokens."""
-    if step.layout is None or isinstance(step.layout, (Plain, Orbit)):
+    """The layout of a value padded along its last axes: plain channels (which no group element moves) or an orbit
+    map whose last two axes are the spatial ones; refused for channels-last values, tokens and orbit vectors (a
+    (B, C) value, whose last axis holds the orbits' slots)."""
+    meta = step.node.args[0].meta.get("tensor_meta")   # its shape (graph/tracing.py imports this module)
+    rank = len(meta.shape) if hasattr(meta, "shape") else 0
+    if step.layout is None or isinstance(step.layout, Plain) or (isinstance(step.layout, Orbit) and rank == 4):
         return step.layout
     raise step.refuse(f"{what} of a value whose last two axes are not the spatial ones",
                       "pad (batch, channels, height, width) maps only, or convert only up to the node before it "
