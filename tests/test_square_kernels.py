@@ -184,3 +184,12 @@ def test_calibration_past_its_feature_limit_carries_the_grown_kernels(group, mon
     cross = torch.zeros(7, 7, dtype=torch.bool)
     cross[3, :], cross[:, 3] = True, True
     assert taps[~cross].max() == 0 and taps[cross].min() > 0
+
+
+def test_the_check_lists_each_grown_kernel():
+    """`orbify check` (check_model) names every layer whose kernel grew, with the note the plan keeps on it."""
+    model, x = bars_model(), torch.randn(2, 3, 13, 13)
+    converted, plan = convert(model, "c4", example_input=x[:1])
+    report = orbify.check_model(converted, model, plan, x)
+    grown = [note for note in report.notes if "kernel grown" in note]
+    assert len(grown) == 5 and any(note.startswith("'wide': kernel grown from 1×7 to 7×7") for note in grown)

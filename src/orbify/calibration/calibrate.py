@@ -67,7 +67,11 @@ from orbify.graph.tracing import describe
 from orbify.symmetry.groups import Group, parse_group
 from orbify.symmetry.layouts import Flat, Orbit, Permuted, Plain
 
-__all__ = ["CalibrationReport", "LayerCalibration", "MAX_FEATURES", "SELECTIONS", "calibrate_conversion"]
+CALIBRATED_NOTE = "calibrated"
+"""How a calibrated layer's note in the plan begins."""
+
+__all__ = ["CALIBRATED_NOTE", "CalibrationReport", "LayerCalibration", "MAX_FEATURES", "SELECTIONS",
+           "calibrate_conversion"]
 
 #: Default ridge, relative to the mean diagonal of each layer's Gram matrix (see DEVELOPERS.md, "Calibration").
 RIDGE = 1e-3
@@ -153,7 +157,7 @@ def _note_in_plan(plan: ConversionPlan, report: CalibrationReport) -> None:
         entry = next((p for p in plan.layers if p.name == layer.name), None)
         if entry is not None:
             error = "" if layer.error is None else f", unexplained variance {layer.error:.4f}"
-            entry.notes.append(f"calibrated: {layer.method}{error}" + (f" ({layer.note})" if layer.note else ""))
+            entry.notes.append(f"{CALIBRATED_NOTE}: {layer.method}{error}" + (f" ({layer.note})" if layer.note else ""))
 
 
 class _Calibration:

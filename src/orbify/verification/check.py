@@ -31,6 +31,7 @@ import torch
 import torch.nn.functional as F
 from torch import nn
 
+from orbify.calibration.calibrate import CALIBRATED_NOTE
 from orbify.data import ImageSet
 from orbify.errors import InputShapeError
 from orbify.graph.plan import ConversionPlan
@@ -212,12 +213,19 @@ def check_model(converted: nn.Module, original: nn.Module, plan: ConversionPlan,
         invariance_error_float32=max(output32),
         size=_size_safety(converted, original, images.shape[1], tuple(images.shape[-2:]), safe_size_count),
         layers=[_layer_check(layer, layer_errors.get(layer.target), refits.get(layer.name)) for layer in plan.layers],
-        roundings=list(plan.roundings), notes=list(plan.notes) + drift.pop("notes"),
+        roundings=list(plan.roundings), notes=list(plan.notes) + _layer_notes(plan) + drift.pop("notes"),
         first_layer=_first_layer_filters(converted, original, plan, group) if original_weights_known else None,
         original_weights_known=original_weights_known, **drift,
         segmentation=_segmentation(converted32, original32 if original_weights_known else None, images, inputs,
                                    group, batch_size) if dense else None,
     )
+
+
+def _layer_notes(plan: ConversionPlan) -> list[str]:
+    """The plan's notes on single layers (a kernel grown to a square, a conv run along the orbits), each led by the
+    layer's module; a calibrated layer's own note is left out (its refit error has a column of the layer table)."""
+    return [f"'{layer.target}': {note}" for layer in plan.layers for note in layer.notes
+            if not note.startswith(CALIBRATED_NOTE)]
 
 
 def element_name(group: Group, g: int) -> str:
