@@ -168,6 +168,38 @@ def test_layers_combined_with_a_converted_value_take_its_width(group):
         type(plan.layer("primary").layout_out)(2 * plan.layer("primary").layout_out.orbits)
 
 
+class GatedGhost(nn.Module):
+    """timm.models.ghostnet's GhostModuleV2 ('attn'): two halves concatenated, cut to the output width and multiplied
+    by a gate computed first but activated and upsampled last (``out[:, :out] * F.interpolate(sigmoid(short(x)))``;
+    here the gate is not pooled, so the upsampling keeps its size)."""
+
+    def __init__(self, width: int = 12):
+        super().__init__()
+        half = math.ceil(width / 2)
+        self.width = width
+        self.short = nn.Sequential(nn.Conv2d(3, width, 1), nn.BatchNorm2d(width))
+        self.gate = nn.Sigmoid()
+        self.primary = nn.Conv2d(3, half, 3, padding=1)
+        self.cheap = nn.Conv2d(half, half, 3, padding=1, groups=half)
+        self.head = _head(width)
+
+    def forward(self, x):
+        res = self.short(x)
+        first = self.primary(x)
+        out = torch.cat([first, self.cheap(first)], dim=1)
+        return self.head(out[:, :self.width] * nn.functional.interpolate(
+            self.gate(res), size=(out.shape[-2], out.shape[-1]), mode="nearest"))
+
+
+def test_a_cut_multiplied_by_a_gate_computed_later_in_the_graph_takes_the_gates_width():
+    """Under c4 the 12-channel gate gets 3 orbits and the halves of 6 get 2 + 2: the cut of the 4-orbit
+    concatenation takes the gate's 3. The gate's layers are converted first, but the graph computes its sigmoid and
+    upsampling after the cut (timm's ghostnetv2 under d4 was refused at the product: orbit(10) and orbit(9))."""
+    converted, plan, error = _converted(GatedGhost(), "c4")
+    assert error < 1e-9
+    assert plan.values["getitem"].orbits == plan.layer("short.0").layout_out.orbits == 3
+
+
 class Reuse(nn.Module):
     """timm.models.rexnet's LinearBottleneck: ``cat([x[:, :in] + shortcut, x[:, in:]])`` with 50 channels in, 61 out."""
 

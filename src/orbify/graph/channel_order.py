@@ -291,14 +291,34 @@ def _orbit_cuts(step, value: fx.Node, cuts: list[int], readers: list[list[fx.Nod
 
 
 def _partner(step, readers: list[fx.Node]) -> tuple[fx.Node, int] | None:
-    """A value already converted, of orbit layout, that one of ``readers`` is combined with elementwise, and its
-    orbits."""
+    """A value of orbit layout that one of ``readers`` is combined with elementwise, and its orbits: converted
+    already, or computed from one that is by functions keeping its channels (a gate's activation and upsampling,
+    which the graph may run after the cut)."""
     for reader in readers:
         for other in added_partners(reader):
-            layout = step.arg_layout(other)
+            layout = step.arg_layout(_walked_source(step, other))
             if isinstance(unpermuted(layout), Orbit) and not isinstance(layout, HeadValues):
                 return other, unpermuted(layout).orbits
     return None
+
+
+def _walked_source(step, value: fx.Node) -> fx.Node:
+    """``value``, or while it is not converted yet, the one tensor input of the op computing it when that keeps the
+    number of channels and holds no parameters (a function, a method, an activation module: never a layer that could
+    choose its width)."""
+    while step.arg_layout(value) is None and _parameter_free(value):
+        tensors = [node for node in value.all_input_nodes if shape(node) is not None and node.op != "get_attr"]
+        if len(tensors) != 1 or (shape(tensors[0]) or (None, None))[1:2] != (shape(value) or (None, None))[1:2]:
+            break
+        value = tensors[0]
+    return value
+
+
+def _parameter_free(node: fx.Node) -> bool:
+    if node.op in ("call_function", "call_method"):
+        return True
+    return node.op == "call_module" and not any(True for _ in node.graph.owning_module.get_submodule(node.target)
+                                                                .parameters())
 
 
 def channel_slice(node: fx.Node) -> tuple[int, int] | None:
