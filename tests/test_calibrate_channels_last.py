@@ -25,15 +25,6 @@ from small_vit import TinyViT
 RIDGE = 1e-3   # calibrate_conversion's default ridge, relative to the mean diagonal of the Gram matrix
 
 
-@pytest.fixture(autouse=True, scope="module")
-def one_thread():
-    """One intra-op thread per test process: the suite runs two processes on two cores."""
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(threads)
-
-
 def moved_copies(x: torch.Tensor, group: str) -> list[torch.Tensor]:
     """The images turned by every quarter turn and, under d4, mirrored too (torch.rot90 / torch.flip)."""
     turns = [torch.rot90(x, k, dims=(2, 3)) for k in range(4)]

@@ -23,14 +23,6 @@ from timm.layers import Attention  # noqa: E402
 from timm.models.vision_transformer import VisionTransformer  # noqa: E402
 
 
-@pytest.fixture(autouse=True)
-def one_thread():
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(threads)
-
-
 def moved_images(group, g: int, x: torch.Tensor) -> torch.Tensor:
     """Element g on images with torch.flip / torch.rot90 (the reference, not the project's act)."""
     k, m = group.elements[g]

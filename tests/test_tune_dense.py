@@ -42,14 +42,6 @@ def scenes(count: int = 48, seed: int = 1) -> tuple[torch.Tensor, torch.Tensor]:
     return images, masks
 
 
-@pytest.fixture(autouse=True, scope="module")
-def one_thread():
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)
-    yield
-    torch.set_num_threads(threads)
-
-
 # -- the dense teacher against numpy ----------------------------------------------------------------
 def _numpy_teacher(model: nn.Module, images: np.ndarray, elements, how: str) -> np.ndarray:
     """The per-pixel teacher written with numpy alone: each view g·x (numpy.flip, then numpy.rot90), the model's map

@@ -317,8 +317,8 @@ def _walked_source(step, value: fx.Node) -> fx.Node:
 def _parameter_free(node: fx.Node) -> bool:
     if node.op in ("call_function", "call_method"):
         return True
-    return node.op == "call_module" and not any(True for _ in node.graph.owning_module.get_submodule(node.target)
-                                                                .parameters())
+    module = node.graph.owning_module.get_submodule(node.target) if node.op == "call_module" else None
+    return module is not None and next(module.parameters(), None) is None
 
 
 def channel_slice(node: fx.Node) -> tuple[int, int] | None:
